@@ -1,0 +1,41 @@
+//! How a model is evaluated with features missing: the model always needs a
+//! full row, so each removal kind fills the missing features of a coalition
+//! with its own rows and weights.
+
+use ndarray::{ArrayView1, ArrayViewMut2};
+
+use super::coalition::Coalition;
+
+/// The removal choices, as the API names them.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum RemovalKind {
+    Fixed,
+    Marginal,
+    Independent,
+    ConditionalGaussian,
+    ConditionalNeighbors,
+}
+
+/// Fills the rows that stand for "the instance with only these features
+/// present". Implementations precompute what they need at construction; a
+/// call allocates nothing.
+pub trait Removal: Send + Sync {
+    fn kind(&self) -> RemovalKind;
+
+    /// Rows (and weights) one coalition costs.
+    fn rows_per_coalition(&self) -> usize;
+
+    /// Writes `rows_per_coalition()` rows into `rows` (shape `rows × features`):
+    /// `x[j]` where `present[j]`, a fill-in value otherwise; and one weight
+    /// per row into `weights` (non-negative, summing to 1). `coalition` is
+    /// the player coalition behind `present`; random removals seed their
+    /// draws from it so the same coalition always gets the same rows.
+    fn fill(
+        &self,
+        x: ArrayView1<'_, f64>,
+        present: &[bool],
+        coalition: Coalition,
+        rows: ArrayViewMut2<'_, f64>,
+        weights: &mut [f64],
+    );
+}
