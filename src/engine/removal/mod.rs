@@ -17,8 +17,8 @@ pub enum RemovalKind {
 }
 
 /// Fills the rows that stand for "the instance with only these features
-/// present". Implementations precompute what they need at construction; a
-/// call allocates nothing.
+/// present". Implementations precompute what they need at construction and
+/// write straight into the caller's rows: no allocation per row.
 pub trait Removal: Send + Sync {
     fn kind(&self) -> RemovalKind;
 
