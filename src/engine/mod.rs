@@ -7,6 +7,7 @@ pub mod coalition;
 pub mod error;
 pub mod estimate;
 pub mod game;
+pub mod plan;
 pub mod players;
 pub mod removal;
 pub mod summary;
