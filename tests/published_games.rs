@@ -4,7 +4,11 @@
 use apportion::engine::estimate::exact;
 use apportion::engine::{CachedGame, Coalition, FnGame, Summary};
 
-fn exact_values(players: usize, value: impl Fn(Coalition) -> f64 + Sync, summary: Summary) -> Vec<f64> {
+fn exact_values(
+    players: usize,
+    value: impl Fn(Coalition) -> f64 + Sync,
+    summary: Summary,
+) -> Vec<f64> {
     let game = FnGame::new(players, value);
     let cached = CachedGame::new(&game);
     exact::explain(&cached, summary).unwrap().values
@@ -13,7 +17,10 @@ fn exact_values(players: usize, value: impl Fn(Coalition) -> f64 + Sync, summary
 fn assert_close(actual: &[f64], expected: &[f64], tolerance: f64) {
     assert_eq!(actual.len(), expected.len());
     for (i, (a, e)) in actual.iter().zip(expected).enumerate() {
-        assert!((a - e).abs() <= tolerance, "player {i}: got {a}, expected {e}");
+        assert!(
+            (a - e).abs() <= tolerance,
+            "player {i}: got {a}, expected {e}"
+        );
     }
 }
 
@@ -28,7 +35,11 @@ fn glove_game_shapley() {
         let right = c.contains(1) as usize + c.contains(2) as usize;
         left.min(right) as f64
     };
-    assert_close(&exact_values(3, value, Summary::Shapley), &[2.0 / 3.0, 1.0 / 6.0, 1.0 / 6.0], 1e-15);
+    assert_close(
+        &exact_values(3, value, Summary::Shapley),
+        &[2.0 / 3.0, 1.0 / 6.0, 1.0 / 6.0],
+        1e-15,
+    );
 }
 
 /// UN Security Council since 1965: 5 permanent members (players 0–4) and 10
@@ -57,8 +68,16 @@ fn nassau_county_board() {
     let weights = [9.0, 9.0, 7.0, 3.0, 1.0, 1.0];
     let value = |c: Coalition| (c.members().map(|i| weights[i]).sum::<f64>() >= 16.0) as u8 as f64;
     let third = 1.0 / 3.0;
-    assert_close(&exact_values(6, value, Summary::Shapley), &[third, third, third, 0.0, 0.0, 0.0], 1e-15);
-    assert_close(&exact_values(6, value, Summary::Banzhaf), &[0.5, 0.5, 0.5, 0.0, 0.0, 0.0], 1e-15);
+    assert_close(
+        &exact_values(6, value, Summary::Shapley),
+        &[third, third, third, 0.0, 0.0, 0.0],
+        1e-15,
+    );
+    assert_close(
+        &exact_values(6, value, Summary::Banzhaf),
+        &[0.5, 0.5, 0.5, 0.0, 0.0, 0.0],
+        1e-15,
+    );
 }
 
 /// Airport game with runway costs 1, 3, 4, 8: v(S) = the largest cost in S.
@@ -83,8 +102,16 @@ fn glove_game_leave_one_out_and_include_one() {
         let right = c.contains(1) as usize + c.contains(2) as usize;
         (c.contains(0) as usize).min(right) as f64
     };
-    assert_close(&exact_values(3, value, Summary::LeaveOneOut), &[1.0, 0.0, 0.0], 0.0);
-    assert_close(&exact_values(3, value, Summary::IncludeOne), &[0.0, 0.0, 0.0], 0.0);
+    assert_close(
+        &exact_values(3, value, Summary::LeaveOneOut),
+        &[1.0, 0.0, 0.0],
+        0.0,
+    );
+    assert_close(
+        &exact_values(3, value, Summary::IncludeOne),
+        &[0.0, 0.0, 0.0],
+        0.0,
+    );
 }
 
 /// Selection on the airport game: the most expensive runway alone reaches
@@ -93,7 +120,9 @@ fn glove_game_leave_one_out_and_include_one() {
 #[test]
 fn selection_picks_the_smallest_set_that_reaches_the_fraction() {
     let costs = [1.0, 3.0, 4.0, 8.0];
-    let game = FnGame::new(4, |c: Coalition| c.members().map(|i| costs[i]).fold(0.0, f64::max));
+    let game = FnGame::new(4, |c: Coalition| {
+        c.members().map(|i| costs[i]).fold(0.0, f64::max)
+    });
     let cached = CachedGame::new(&game);
     let estimate = exact::explain(&cached, Summary::Selection { fraction: 0.9 }).unwrap();
     let selection = estimate.selection.unwrap();

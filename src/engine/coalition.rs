@@ -88,7 +88,10 @@ impl std::fmt::Debug for Coalition {
 /// Every coalition of `players` players (2^players of them), in binary
 /// counting order. Callers check the exact-enumeration cap before calling.
 pub fn all_coalitions(players: usize) -> impl Iterator<Item = Coalition> {
-    assert!(players < 64, "enumeration of 2^{players} coalitions is not feasible");
+    assert!(
+        players < 64,
+        "enumeration of 2^{players} coalitions is not feasible"
+    );
     (0u64..1u64 << players).map(|bits| Coalition(bits as u128))
 }
 

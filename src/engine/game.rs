@@ -191,14 +191,16 @@ impl<'a> ModelGame<'a> {
                 }
                 rows.view()
             }
-            _ => ArrayView2::from_shape((1, instance.len()), instance).map_err(|_| {
-                EngineError::new("instance", "could not be read as one row")
-            })?,
+            _ => ArrayView2::from_shape((1, instance.len()), instance)
+                .map_err(|_| EngineError::new("instance", "could not be read as one row"))?,
         };
         if instances.ncols() != features {
             return Err(EngineError::new(
                 "instance",
-                format!("has {} values; the model takes {features}", instances.ncols()),
+                format!(
+                    "has {} values; the model takes {features}",
+                    instances.ncols()
+                ),
             ));
         }
         let mut game = ModelGame {

@@ -213,7 +213,10 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
     let why_not_exact = if p > cap {
         format!("{p} players exceed the exact-enumeration cap of {cap}")
     } else if all > input.max_evaluations {
-        format!("2^{p} coalitions exceed max_evaluations = {}", input.max_evaluations)
+        format!(
+            "2^{p} coalitions exceed max_evaluations = {}",
+            input.max_evaluations
+        )
     } else {
         format!(
             "2^{p} coalitions × {} rows would take longer than the {} ms budget",

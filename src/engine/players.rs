@@ -24,7 +24,10 @@ impl Players {
     /// is its own player (named after the feature).
     pub fn try_new(feature_names: &[String], groups: &[String]) -> Result<Players> {
         if feature_names.is_empty() {
-            return Err(EngineError::new("features", "at least one feature is required"));
+            return Err(EngineError::new(
+                "features",
+                "at least one feature is required",
+            ));
         }
         if groups.len() != feature_names.len() {
             return Err(EngineError::new(
@@ -139,7 +142,10 @@ mod tests {
             &strings(&["", "", "debt", "", "debt"]),
         )
         .unwrap();
-        assert_eq!(players.names(), strings(&["income", "rent", "debt", "tenure"]));
+        assert_eq!(
+            players.names(),
+            strings(&["income", "rent", "debt", "tenure"])
+        );
         assert_eq!(players.members(2), &[2, 4]);
         let mut present = vec![false; 5];
         players.present_features(Coalition::singleton(2), &mut present);

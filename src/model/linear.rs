@@ -15,7 +15,10 @@ pub struct LinearModel {
 impl LinearModel {
     pub fn try_new(weights: Vec<f64>, intercept: f64, link: Link) -> Result<LinearModel> {
         if weights.is_empty() {
-            return Err(EngineError::new("linear.weights", "at least one weight is required"));
+            return Err(EngineError::new(
+                "linear.weights",
+                "at least one weight is required",
+            ));
         }
         if let Some(j) = weights.iter().position(|w| !w.is_finite()) {
             return Err(EngineError::new(
@@ -24,7 +27,10 @@ impl LinearModel {
             ));
         }
         if !intercept.is_finite() {
-            return Err(EngineError::new("linear.intercept", "must be a finite number"));
+            return Err(EngineError::new(
+                "linear.intercept",
+                "must be a finite number",
+            ));
         }
         Ok(LinearModel {
             weights,
@@ -53,7 +59,12 @@ impl Model for LinearModel {
 
     fn predict(&self, rows: ArrayView2<'_, f64>, out: &mut [f64]) {
         for (row, slot) in rows.rows().into_iter().zip(out.iter_mut()) {
-            *slot = self.intercept + row.iter().zip(&self.weights).map(|(x, w)| x * w).sum::<f64>();
+            *slot = self.intercept
+                + row
+                    .iter()
+                    .zip(&self.weights)
+                    .map(|(x, w)| x * w)
+                    .sum::<f64>();
         }
     }
 

@@ -36,7 +36,10 @@ impl Tree {
         let nodes = left.len();
         let field = |name: &str| format!("trees.{name}");
         if nodes == 0 {
-            return Err(EngineError::new(field("left"), "a tree needs at least one node"));
+            return Err(EngineError::new(
+                field("left"),
+                "a tree needs at least one node",
+            ));
         }
         for (name, len) in [
             ("feature", feature.len()),
@@ -54,7 +57,10 @@ impl Tree {
         if !missing_left.is_empty() && missing_left.len() != nodes {
             return Err(EngineError::new(
                 field("missing_left"),
-                format!("has {} entries; give none or one per node ({nodes})", missing_left.len()),
+                format!(
+                    "has {} entries; give none or one per node ({nodes})",
+                    missing_left.len()
+                ),
             ));
         }
         let mut reached = vec![false; nodes];
@@ -75,7 +81,10 @@ impl Tree {
             if feature[node] < 0 || feature[node] as usize >= inputs {
                 return Err(EngineError::new(
                     field("feature"),
-                    format!("node {node} splits on feature {} of {inputs}", feature[node]),
+                    format!(
+                        "node {node} splits on feature {} of {inputs}",
+                        feature[node]
+                    ),
                 ));
             }
             if threshold[node].is_nan() {
@@ -88,13 +97,17 @@ impl Tree {
                 if child < 0 || child as usize >= nodes {
                     return Err(EngineError::new(
                         field("left"),
-                        format!("node {node} has child {child}, outside 0..{nodes} (-1 on both sides marks a leaf)"),
+                        format!(
+                            "node {node} has child {child}, outside 0..{nodes} (-1 on both sides marks a leaf)"
+                        ),
                     ));
                 }
                 if std::mem::replace(&mut reached[child as usize], true) {
                     return Err(EngineError::new(
                         field("left"),
-                        format!("node {child} is reached twice; trees must not share or cycle nodes"),
+                        format!(
+                            "node {child} is reached twice; trees must not share or cycle nodes"
+                        ),
                     ));
                 }
                 stack.push(child as usize);
@@ -200,17 +213,30 @@ pub struct TreeEnsemble {
 }
 
 impl TreeEnsemble {
-    pub fn try_new(trees: Vec<Tree>, base_score: f64, link: Link, inputs: usize) -> Result<TreeEnsemble> {
+    pub fn try_new(
+        trees: Vec<Tree>,
+        base_score: f64,
+        link: Link,
+        inputs: usize,
+    ) -> Result<TreeEnsemble> {
         if trees.is_empty() {
-            return Err(EngineError::new("trees.trees", "an ensemble needs at least one tree"));
+            return Err(EngineError::new(
+                "trees.trees",
+                "an ensemble needs at least one tree",
+            ));
         }
         if !base_score.is_finite() {
-            return Err(EngineError::new("trees.base_score", "must be a finite number"));
+            return Err(EngineError::new(
+                "trees.base_score",
+                "must be a finite number",
+            ));
         }
-        if let Some(t) = trees
-            .iter()
-            .position(|t| t.feature.iter().zip(&t.left).any(|(f, l)| *l != -1 && *f >= inputs))
-        {
+        if let Some(t) = trees.iter().position(|t| {
+            t.feature
+                .iter()
+                .zip(&t.left)
+                .any(|(f, l)| *l != -1 && *f >= inputs)
+        }) {
             return Err(EngineError::new(
                 "trees.feature",
                 format!("tree {t} splits on a feature beyond the model's {inputs} inputs"),
@@ -294,9 +320,25 @@ mod tests {
 
     #[test]
     fn malformed_trees_are_refused() {
-        let cycle = Tree::try_new(vec![0, 0], vec![0.0, 0.0], vec![1, 0], vec![1, 0], vec![0.0, 0.0], vec![], 1);
+        let cycle = Tree::try_new(
+            vec![0, 0],
+            vec![0.0, 0.0],
+            vec![1, 0],
+            vec![1, 0],
+            vec![0.0, 0.0],
+            vec![],
+            1,
+        );
         assert_eq!(cycle.unwrap_err().field, "trees.left");
-        let out_of_range = Tree::try_new(vec![3, -1, -1], vec![0.0; 3], vec![1, -1, -1], vec![2, -1, -1], vec![0.0; 3], vec![], 2);
+        let out_of_range = Tree::try_new(
+            vec![3, -1, -1],
+            vec![0.0; 3],
+            vec![1, -1, -1],
+            vec![2, -1, -1],
+            vec![0.0; 3],
+            vec![],
+            2,
+        );
         assert_eq!(out_of_range.unwrap_err().field, "trees.feature");
     }
 }

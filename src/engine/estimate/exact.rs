@@ -24,7 +24,10 @@ pub fn explain(game: &CachedGame, summary: Summary) -> Result<Estimate> {
             Ok(from_all_values(&values, players, summary))
         }
         Summary::LeaveOneOut | Summary::IncludeOne => Ok(one_at_a_time(game, summary)),
-        Summary::LinearFit(_kernel) => Err(EngineError::new("summary", "TEMPORARY: waiting for regression::fit_all")),
+        Summary::LinearFit(_kernel) => Err(EngineError::new(
+            "summary",
+            "TEMPORARY: waiting for regression::fit_all",
+        )),
         Summary::Selection { fraction } => select(game, fraction),
     }
 }

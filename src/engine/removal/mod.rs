@@ -2,6 +2,18 @@
 //! full row, so each removal kind fills the missing features of a coalition
 //! with its own rows and weights.
 
+mod fixed;
+mod gaussian;
+mod independent;
+mod marginal;
+mod neighbors;
+
+pub use fixed::Fixed;
+pub use gaussian::ConditionalGaussian;
+pub use independent::Independent;
+pub use marginal::Marginal;
+pub use neighbors::ConditionalNeighbors;
+
 use ndarray::{ArrayView1, ArrayViewMut2};
 
 use super::coalition::Coalition;
