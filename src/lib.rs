@@ -8,7 +8,9 @@
 //!   summaries, estimators and the planner. Pure numeric code.
 //! - [`model`]: the [`model::Model`] trait and the model kinds (linear, tree
 //!   ensembles).
+//! - [`reasons`]: attributions → principal reason statements.
 #![deny(unsafe_code)]
 
 pub mod engine;
 pub mod model;
+pub mod reasons;
