@@ -6,6 +6,7 @@
 pub mod coalition;
 pub mod error;
 pub mod estimate;
+pub mod explain;
 pub mod game;
 pub mod plan;
 pub mod players;
@@ -16,6 +17,7 @@ pub mod target;
 pub use coalition::{Coalition, MAX_PLAYERS};
 pub use error::{EngineError, Result};
 pub use estimate::{Estimate, EstimatorKind, Stopping};
+pub use explain::{Explanation, RemovalChoice, Request, Subject, explain};
 pub use game::{CachedGame, FnGame, Game, ModelGame};
 pub use players::Players;
 pub use removal::{Removal, RemovalKind};

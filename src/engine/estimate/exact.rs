@@ -2,7 +2,7 @@
 //! Shapley, Banzhaf and the linear fit; p + 2 for leave-one-out and
 //! include-one; a greedy walk for selection.
 
-use super::{Estimate, Selection};
+use super::{Estimate, Selection, regression};
 use crate::engine::coalition::{Coalition, all_coalitions};
 use crate::engine::error::{EngineError, Result};
 use crate::engine::game::{CachedGame, Game};
@@ -24,10 +24,7 @@ pub fn explain(game: &CachedGame, summary: Summary) -> Result<Estimate> {
             Ok(from_all_values(&values, players, summary))
         }
         Summary::LeaveOneOut | Summary::IncludeOne => Ok(one_at_a_time(game, summary)),
-        Summary::LinearFit(_kernel) => Err(EngineError::new(
-            "summary",
-            "TEMPORARY: waiting for regression::fit_all",
-        )),
+        Summary::LinearFit(kernel) => regression::fit_all(game, kernel),
         Summary::Selection { fraction } => select(game, fraction),
     }
 }
