@@ -48,7 +48,7 @@ fn values_of(model: &LinearModel, x: &[f64], target: &Target) -> Vec<f64> {
     let removal = Marginal::try_new(bg.view()).unwrap();
     let players = Players::singletons(3);
     let game = ModelGame::try_new(model, &removal, &players, x, target).unwrap();
-    let coalitions: Vec<Coalition> = (0..8).map(|b| Coalition::from_bits(b)).collect();
+    let coalitions: Vec<Coalition> = (0..8).map(Coalition::from_bits).collect();
     let mut out = vec![0.0; 8];
     game.values(&coalitions, &mut out);
     assert_eq!(

@@ -334,22 +334,6 @@ fn validate(subject: &Subject, request: &Request) -> Result<()> {
             "must allow at least v(all) and v(none): 2 or more",
         ));
     }
-    if let Summary::Selection { fraction } = request.summary {
-        if !(fraction > 0.0 && fraction <= 1.0) {
-            return Err(EngineError::new(
-                "selection_fraction",
-                format!("must be in (0, 1], got {fraction}"),
-            ));
-        }
-    }
-    if let Summary::LinearFit(super::summary::Kernel::Exponential { width }) = request.summary {
-        if !(width > 0.0 && width.is_finite()) {
-            return Err(EngineError::new(
-                "kernel_width",
-                "must be a finite number > 0",
-            ));
-        }
-    }
     Ok(())
 }
 
