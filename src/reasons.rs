@@ -76,6 +76,9 @@ mod tests {
         let reasons = principal_reasons(&[0.0, 0.2, -0.1], &[0.0, 0.0, 0.08], &statements(3), 4);
         assert_eq!(reasons.len(), 1);
         assert_eq!(reasons[0].player, 2);
-        assert!(!reasons[0].confident, "0.1 is within two std errors of 0.08");
+        assert!(
+            !reasons[0].confident,
+            "0.1 is within two std errors of 0.08"
+        );
     }
 }
