@@ -8,9 +8,17 @@
 //!   summaries, estimators and the planner. Pure numeric code.
 //! - [`model`]: the [`model::Model`] trait and the model kinds (linear, tree
 //!   ensembles).
+//! - [`demo`]: the fictional housing co-operative: synthetic applicants, two trained models.
 //! - [`reasons`]: attributions → principal reason statements.
+//! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
+//! - [`service`]: the gRPC API: conversions, error → status, handlers, `run`.
+//! - [`telemetry`]: log subscriber and Prometheus metrics.
 #![deny(unsafe_code)]
 
+pub mod demo;
 pub mod engine;
 pub mod model;
 pub mod reasons;
+pub mod registry;
+pub mod service;
+pub mod telemetry;

@@ -1,0 +1,592 @@
+//! Wire types ↔ registry and engine types. Protobuf stops here: every
+//! conversion into the engine validates what the engine cannot see (enum
+//! values, options given to the wrong choice, matrix shapes) and names the
+//! API field at fault.
+
+use std::time::Duration;
+
+use ndarray::Array2;
+
+use super::proto;
+use super::status::ServiceError;
+use crate::engine::explain::{self, RemovalChoice, Request};
+use crate::engine::{EstimatorKind, Kernel, Players, Summary, Target};
+use crate::model::Link;
+use crate::reasons;
+use crate::registry::{
+    Background, Entry, FeatureSpec, LinkSpec, MAX_BACKGROUND_BYTES, MAX_BACKGROUND_ROWS, ModelBody,
+    ModelInfo, ModelSpec, TreeBody,
+};
+
+/// Evaluation cap when the request gives none.
+pub const DEFAULT_MAX_EVALUATIONS: u64 = 1 << 20;
+
+type Result<T> = std::result::Result<T, ServiceError>;
+
+/// A known value of a proto enum, or INVALID_ARGUMENT naming `field`.
+fn known<E: TryFrom<i32>>(field: &str, value: i32) -> Result<E> {
+    E::try_from(value).map_err(|_| {
+        ServiceError::invalid(field, format!("{value} is not a known value of this enum"))
+    })
+}
+
+fn link_from(value: i32) -> Result<LinkSpec> {
+    Ok(match known::<proto::Link>("link", value)? {
+        proto::Link::Identity => LinkSpec::Identity,
+        proto::Link::Logistic => LinkSpec::Logistic,
+    })
+}
+
+fn link_to(link: Link) -> proto::Link {
+    match link {
+        Link::Identity => proto::Link::Identity,
+        Link::Logistic => proto::Link::Logistic,
+    }
+}
+
+impl From<proto::Feature> for FeatureSpec {
+    fn from(feature: proto::Feature) -> FeatureSpec {
+        FeatureSpec {
+            name: feature.name,
+            group: feature.group,
+            reason_code: feature.reason_code,
+            reason_text: feature.reason_text,
+        }
+    }
+}
+
+impl From<&FeatureSpec> for proto::Feature {
+    fn from(feature: &FeatureSpec) -> proto::Feature {
+        proto::Feature {
+            name: feature.name.clone(),
+            group: feature.group.clone(),
+            reason_code: feature.reason_code.clone(),
+            reason_text: feature.reason_text.clone(),
+        }
+    }
+}
+
+/// Checks a matrix's shape against its values and the size limits before
+/// anything is allocated for it.
+fn checked_shape(field: &str, matrix: &proto::Matrix) -> Result<(usize, usize)> {
+    let (rows, cols) = (matrix.rows as usize, matrix.cols as usize);
+    if rows > MAX_BACKGROUND_ROWS {
+        return Err(ServiceError::invalid(
+            field,
+            format!("{rows} rows exceed the limit of {MAX_BACKGROUND_ROWS}; send a smaller sample"),
+        ));
+    }
+    let bytes = matrix
+        .values
+        .len()
+        .saturating_mul(std::mem::size_of::<f64>());
+    if bytes > MAX_BACKGROUND_BYTES {
+        return Err(ServiceError::invalid(
+            field,
+            format!(
+                "{bytes} bytes of values exceed the limit of {MAX_BACKGROUND_BYTES}; send a smaller sample"
+            ),
+        ));
+    }
+    if rows.checked_mul(cols) != Some(matrix.values.len()) {
+        return Err(ServiceError::invalid(
+            field,
+            format!(
+                "rows × cols = {rows} × {cols} but {} values were sent; send rows × cols values, row-major",
+                matrix.values.len()
+            ),
+        ));
+    }
+    if rows == 0 || cols == 0 {
+        return Err(ServiceError::invalid(
+            field,
+            "needs at least one row and one column",
+        ));
+    }
+    if let Some(index) = matrix.values.iter().position(|v| !v.is_finite()) {
+        return Err(ServiceError::invalid(
+            field,
+            format!(
+                "value {index} (row {}, column {}) is not finite",
+                index / cols,
+                index % cols
+            ),
+        ));
+    }
+    Ok((rows, cols))
+}
+
+impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
+    type Error = ServiceError;
+
+    fn try_from(request: proto::RegisterModelRequest) -> Result<ModelSpec> {
+        let link = link_from(request.link)?;
+        let model = match request.model {
+            Some(proto::register_model_request::Model::Linear(linear)) => ModelBody::Linear {
+                weights: linear.weights,
+                intercept: linear.intercept,
+            },
+            Some(proto::register_model_request::Model::Trees(ensemble)) => ModelBody::Trees {
+                trees: ensemble
+                    .trees
+                    .into_iter()
+                    .map(|tree| TreeBody {
+                        feature: tree.feature,
+                        threshold: tree.threshold,
+                        left: tree.left,
+                        right: tree.right,
+                        value: tree.value,
+                        missing_left: tree.missing_left,
+                    })
+                    .collect(),
+                base_score: ensemble.base_score,
+            },
+            Some(proto::register_model_request::Model::Onnx(_)) => {
+                return Err(ServiceError::Unimplemented(
+                    "onnx: ONNX import is not available in this build; register the model as `linear` or `trees`"
+                        .to_string(),
+                ));
+            }
+            None => {
+                return Err(ServiceError::invalid(
+                    "model",
+                    "no model given; set one of `linear`, `trees` or `onnx`",
+                ));
+            }
+        };
+        let matrix = request.background.ok_or_else(|| {
+            ServiceError::invalid(
+                "background",
+                "is required: at least one row of reference values",
+            )
+        })?;
+        let (rows, cols) = checked_shape("background", &matrix)?;
+        Ok(ModelSpec {
+            model_id: request.model_id,
+            features: request
+                .features
+                .into_iter()
+                .map(FeatureSpec::from)
+                .collect(),
+            model,
+            link,
+            background: Background {
+                rows,
+                cols,
+                values: matrix.values,
+            },
+            description: request.description,
+        })
+    }
+}
+
+/// Player names of a feature list, in attribution order. Registered
+/// features always form valid players; anything else gives none.
+fn player_names(features: &[FeatureSpec]) -> Vec<String> {
+    let names: Vec<String> = features.iter().map(|f| f.name.clone()).collect();
+    let groups: Vec<String> = features.iter().map(|f| f.group.clone()).collect();
+    Players::try_new(&names, &groups)
+        .map(|players| players.names().to_vec())
+        .unwrap_or_default()
+}
+
+impl From<&ModelInfo> for proto::ModelInfo {
+    fn from(info: &ModelInfo) -> proto::ModelInfo {
+        proto::ModelInfo {
+            model_id: info.model_id.clone(),
+            version: info.version,
+            features: info.features.iter().map(proto::Feature::from).collect(),
+            background_rows: u32::try_from(info.background_rows).unwrap_or(u32::MAX),
+            model_kind: info.model_kind.to_string(),
+            link: link_to(info.link) as i32,
+            row_cost_ns: info.row_cost_ns,
+            registered_unix_ms: i64::try_from(info.registered_unix_ms).unwrap_or(i64::MAX),
+            checksum: info.checksum.clone(),
+            description: info.description.clone(),
+            players: player_names(&info.features),
+        }
+    }
+}
+
+pub fn estimator_from(value: i32) -> Result<Option<EstimatorKind>> {
+    Ok(match known::<proto::Estimator>("estimator", value)? {
+        proto::Estimator::Auto => None,
+        proto::Estimator::Exact => Some(EstimatorKind::Exact),
+        proto::Estimator::Permutation => Some(EstimatorKind::Permutation),
+        proto::Estimator::PairedRegression => Some(EstimatorKind::PairedRegression),
+        proto::Estimator::LeverageRegression => Some(EstimatorKind::LeverageRegression),
+        proto::Estimator::Msr => Some(EstimatorKind::MaximumSampleReuse),
+        proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
+        proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
+    })
+}
+
+pub fn estimator_to(kind: EstimatorKind) -> proto::Estimator {
+    match kind {
+        EstimatorKind::Exact => proto::Estimator::Exact,
+        EstimatorKind::Permutation => proto::Estimator::Permutation,
+        EstimatorKind::PairedRegression => proto::Estimator::PairedRegression,
+        EstimatorKind::LeverageRegression => proto::Estimator::LeverageRegression,
+        EstimatorKind::MaximumSampleReuse => proto::Estimator::Msr,
+        EstimatorKind::TreeExact => proto::Estimator::TreeExact,
+        EstimatorKind::LinearExact => proto::Estimator::LinearExact,
+    }
+}
+
+fn removal_from(request: &proto::ExplainRequest) -> Result<RemovalChoice> {
+    let removal = known::<proto::Removal>("removal", request.removal)?;
+    if removal != proto::Removal::Fixed && !request.fixed_values.is_empty() {
+        return Err(ServiceError::invalid(
+            "fixed_values",
+            "is read by REMOVAL_FIXED only; leave it empty or choose REMOVAL_FIXED",
+        ));
+    }
+    let draws_used = matches!(
+        removal,
+        proto::Removal::Independent | proto::Removal::ConditionalGaussian
+    );
+    if !draws_used && request.draws != 0 {
+        return Err(ServiceError::invalid(
+            "draws",
+            "is read by REMOVAL_INDEPENDENT and REMOVAL_CONDITIONAL_GAUSSIAN only",
+        ));
+    }
+    if removal != proto::Removal::ConditionalNeighbors && request.neighbor_width != 0.0 {
+        return Err(ServiceError::invalid(
+            "neighbor_width",
+            "is read by REMOVAL_CONDITIONAL_NEIGHBORS only",
+        ));
+    }
+    let draws = if request.draws == 0 {
+        explain::DEFAULT_DRAWS
+    } else {
+        request.draws as usize
+    };
+    Ok(match removal {
+        proto::Removal::Marginal => RemovalChoice::Marginal,
+        proto::Removal::Fixed if request.fixed_values.is_empty() => RemovalChoice::Fixed(None),
+        proto::Removal::Fixed => RemovalChoice::Fixed(Some(request.fixed_values.clone())),
+        proto::Removal::Independent => RemovalChoice::Independent { draws },
+        proto::Removal::ConditionalGaussian => RemovalChoice::ConditionalGaussian { draws },
+        proto::Removal::ConditionalNeighbors => {
+            let width = if request.neighbor_width == 0.0 {
+                explain::DEFAULT_WIDTH
+            } else {
+                request.neighbor_width
+            };
+            if !(width.is_finite() && width > 0.0) {
+                return Err(ServiceError::invalid(
+                    "neighbor_width",
+                    format!(
+                        "must be a finite number greater than 0 (or 0 for the default); got {width}"
+                    ),
+                ));
+            }
+            RemovalChoice::ConditionalNeighbors { width }
+        }
+    })
+}
+
+fn target_from(request: &proto::ExplainRequest) -> Result<Target> {
+    let target = known::<proto::Target>("target", request.target)?;
+    if target != proto::Target::Loss && request.label.is_some() {
+        return Err(ServiceError::invalid(
+            "label",
+            "is read by TARGET_LOSS only; leave it unset or choose TARGET_LOSS",
+        ));
+    }
+    let dataset_given = request.dataset.is_some() || !request.dataset_labels.is_empty();
+    if target != proto::Target::DatasetLoss && dataset_given {
+        return Err(ServiceError::invalid(
+            "dataset",
+            "is read by TARGET_DATASET_LOSS only",
+        ));
+    }
+    Ok(match target {
+        proto::Target::Output => Target::Output,
+        proto::Target::Probability => Target::Probability,
+        proto::Target::Loss => {
+            let label = request.label.ok_or_else(|| {
+                ServiceError::invalid(
+                    "label",
+                    "is required for TARGET_LOSS: the observed outcome of this instance",
+                )
+            })?;
+            Target::Loss { label }
+        }
+        proto::Target::DatasetLoss => {
+            let matrix = request.dataset.as_ref().ok_or_else(|| {
+                ServiceError::invalid(
+                    "dataset",
+                    "is required for TARGET_DATASET_LOSS: the labelled rows",
+                )
+            })?;
+            let (rows, cols) = checked_shape("dataset", matrix)?;
+            if request.dataset_labels.len() != rows {
+                return Err(ServiceError::invalid(
+                    "dataset_labels",
+                    format!(
+                        "has {} labels for {rows} dataset rows; give one per row",
+                        request.dataset_labels.len()
+                    ),
+                ));
+            }
+            let rows = Array2::from_shape_vec((rows, cols), matrix.values.clone())
+                .map_err(|e| ServiceError::invalid("dataset", e.to_string()))?;
+            Target::DatasetLoss {
+                rows,
+                labels: request.dataset_labels.clone(),
+            }
+        }
+    })
+}
+
+fn summary_from(request: &proto::ExplainRequest) -> Result<Summary> {
+    let summary = known::<proto::Summary>("summary", request.summary)?;
+    let kernel = known::<proto::Kernel>("kernel", request.kernel)?;
+    if summary != proto::Summary::LinearFit
+        && (kernel != proto::Kernel::Shapley || request.kernel_width != 0.0)
+    {
+        return Err(ServiceError::invalid(
+            "kernel",
+            "kernel and kernel_width are read by SUMMARY_LINEAR_FIT only",
+        ));
+    }
+    if kernel == proto::Kernel::Shapley && request.kernel_width != 0.0 {
+        return Err(ServiceError::invalid(
+            "kernel_width",
+            "is read by KERNEL_EXPONENTIAL only",
+        ));
+    }
+    if summary != proto::Summary::Selection && request.selection_fraction != 0.0 {
+        return Err(ServiceError::invalid(
+            "selection_fraction",
+            "is read by SUMMARY_SELECTION only",
+        ));
+    }
+    Ok(match summary {
+        proto::Summary::Shapley => Summary::Shapley,
+        proto::Summary::Banzhaf => Summary::Banzhaf,
+        proto::Summary::LeaveOneOut => Summary::LeaveOneOut,
+        proto::Summary::IncludeOne => Summary::IncludeOne,
+        proto::Summary::LinearFit => Summary::LinearFit(match kernel {
+            proto::Kernel::Shapley => Kernel::Shapley,
+            proto::Kernel::Exponential => {
+                let width = request.kernel_width;
+                if !(width.is_finite() && width > 0.0) {
+                    return Err(ServiceError::invalid(
+                        "kernel_width",
+                        format!("KERNEL_EXPONENTIAL needs a finite width > 0; got {width}"),
+                    ));
+                }
+                Kernel::Exponential { width }
+            }
+        }),
+        proto::Summary::Selection => {
+            let fraction = request.selection_fraction;
+            if !(fraction > 0.0 && fraction <= 1.0) {
+                return Err(ServiceError::invalid(
+                    "selection_fraction",
+                    format!("SUMMARY_SELECTION needs a fraction in (0, 1]; got {fraction}"),
+                ));
+            }
+            Summary::Selection { fraction }
+        }
+    })
+}
+
+/// The engine request for `request`, with the budget already resolved by
+/// the caller (request, server default and deadline).
+pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Result<Request> {
+    if request.model_id.is_empty() {
+        return Err(ServiceError::invalid("model_id", "is required"));
+    }
+    if !(request.tolerance.is_finite() && request.tolerance >= 0.0) {
+        return Err(ServiceError::invalid(
+            "tolerance",
+            format!(
+                "must be a finite number ≥ 0 (0 = 1% of |v(all) − v(none)|); got {}",
+                request.tolerance
+            ),
+        ));
+    }
+    let mut engine = Request::new(request.instance.clone());
+    engine.removal = removal_from(request)?;
+    engine.target = target_from(request)?;
+    engine.summary = summary_from(request)?;
+    engine.estimator = estimator_from(request.estimator)?;
+    engine.budget = budget;
+    engine.max_evaluations = if request.max_evaluations == 0 {
+        DEFAULT_MAX_EVALUATIONS
+    } else {
+        request.max_evaluations
+    };
+    engine.tolerance = request.tolerance;
+    engine.seed = request.seed;
+    Ok(engine)
+}
+
+/// The answer on the wire: one attribution per player in player order, the
+/// principal reasons, and the accounting.
+pub fn explanation(
+    entry: &Entry,
+    request: &proto::ExplainRequest,
+    answer: &explain::Explanation,
+    budget: Duration,
+) -> proto::Explanation {
+    let estimate = &answer.estimate;
+    let names = entry.players().names();
+    let attributions = names
+        .iter()
+        .zip(&estimate.values)
+        .zip(&estimate.std_errors)
+        .map(|((name, value), std_error)| proto::FeatureAttribution {
+            name: name.clone(),
+            value: *value,
+            std_error: *std_error,
+        })
+        .collect();
+    let limit = if request.max_reasons == 0 {
+        reasons::DEFAULT_REASONS
+    } else {
+        request.max_reasons as usize
+    };
+    let reasons = reasons::principal_reasons(
+        &estimate.values,
+        &estimate.std_errors,
+        entry.reason_statements(),
+        limit,
+    )
+    .into_iter()
+    .map(|reason| proto::Reason {
+        name: names.get(reason.player).cloned().unwrap_or_default(),
+        reason_code: entry
+            .reason_codes()
+            .get(reason.player)
+            .cloned()
+            .unwrap_or_default(),
+        statement: reason.statement,
+        weight: reason.weight,
+        confident: reason.confident,
+    })
+    .collect();
+    let (selected, selection_value) = match &estimate.selection {
+        Some(selection) => (
+            selection
+                .players
+                .iter()
+                .filter_map(|&player| names.get(player).cloned())
+                .collect(),
+            selection.value,
+        ),
+        None => (Vec::new(), 0.0),
+    };
+    let info = entry.info();
+    proto::Explanation {
+        model_id: info.model_id.clone(),
+        version: info.version,
+        request_id: request.request_id.clone(),
+        value_full: estimate.value_full,
+        value_empty: estimate.value_empty,
+        attributions,
+        estimator_used: estimator_to(answer.estimator) as i32,
+        coalitions_evaluated: answer.coalitions_evaluated,
+        model_rows_evaluated: answer.model_rows_evaluated,
+        converged: estimate.converged,
+        elapsed_us: u64::try_from(answer.elapsed.as_micros()).unwrap_or(u64::MAX),
+        seed: request.seed,
+        plan_reason: answer.plan_reason.clone(),
+        cache_hits: answer.cache_hits,
+        efficiency_gap: estimate.efficiency_gap(),
+        reasons,
+        selected,
+        selection_value,
+        budget_ms: u32::try_from(budget.as_millis()).unwrap_or(u32::MAX),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // These checks follow the API's own documented rules (the proto
+    // comments): common practice, no source.
+
+    fn request() -> proto::ExplainRequest {
+        proto::ExplainRequest {
+            model_id: "m".into(),
+            instance: vec![1.0, 2.0],
+            ..Default::default()
+        }
+    }
+
+    fn field_of(error: ServiceError) -> String {
+        match error {
+            ServiceError::Invalid(engine) => engine.field,
+            other => panic!("expected INVALID_ARGUMENT, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn options_given_to_the_wrong_choice_name_their_field() {
+        let mut wrong = request();
+        wrong.fixed_values = vec![0.0, 0.0];
+        assert_eq!(
+            field_of(explain_request(&wrong, Duration::ZERO).unwrap_err()),
+            "fixed_values"
+        );
+        let mut wrong = request();
+        wrong.label = Some(1.0);
+        assert_eq!(
+            field_of(explain_request(&wrong, Duration::ZERO).unwrap_err()),
+            "label"
+        );
+        let mut wrong = request();
+        wrong.target = proto::Target::Loss as i32;
+        assert_eq!(
+            field_of(explain_request(&wrong, Duration::ZERO).unwrap_err()),
+            "label"
+        );
+        let mut wrong = request();
+        wrong.summary = proto::Summary::Selection as i32;
+        assert_eq!(
+            field_of(explain_request(&wrong, Duration::ZERO).unwrap_err()),
+            "selection_fraction"
+        );
+        let mut wrong = request();
+        wrong.removal = 99;
+        assert_eq!(
+            field_of(explain_request(&wrong, Duration::ZERO).unwrap_err()),
+            "removal"
+        );
+    }
+
+    #[test]
+    fn defaults_fill_the_zero_values() {
+        let mut gaussian = request();
+        gaussian.removal = proto::Removal::ConditionalGaussian as i32;
+        let engine = explain_request(&gaussian, Duration::from_millis(7)).unwrap();
+        assert_eq!(
+            engine.removal,
+            RemovalChoice::ConditionalGaussian {
+                draws: explain::DEFAULT_DRAWS
+            }
+        );
+        assert_eq!(engine.max_evaluations, DEFAULT_MAX_EVALUATIONS);
+        assert_eq!(engine.budget, Duration::from_millis(7));
+        assert_eq!(engine.estimator, None);
+    }
+
+    #[test]
+    fn a_matrix_whose_shape_disagrees_with_its_values_is_refused() {
+        let matrix = proto::Matrix {
+            rows: 2,
+            cols: 2,
+            values: vec![1.0, 2.0, 3.0],
+        };
+        assert_eq!(
+            field_of(checked_shape("background", &matrix).unwrap_err()),
+            "background"
+        );
+    }
+}

@@ -1,0 +1,23 @@
+//! The gRPC face of apportion: the generated API types, their conversion to
+//! registry and engine types, the error → status mapping, and the server
+//! (handlers, compute pool, health, reflection).
+//!
+//! Protobuf types stop here; nothing below this module knows about them.
+
+pub mod convert;
+pub mod server;
+pub mod status;
+
+pub use server::{ComputePool, Config, State, run};
+pub use status::{ServiceError, status_of};
+
+/// Types and client/server stubs generated from
+/// `proto/apportion/v1/apportion.proto`.
+#[allow(clippy::all, clippy::pedantic, missing_docs)]
+pub mod proto {
+    tonic::include_proto!("apportion.v1");
+
+    /// The encoded descriptor set of the API, served by reflection.
+    pub const FILE_DESCRIPTOR_SET: &[u8] =
+        tonic::include_file_descriptor_set!("apportion_descriptor");
+}

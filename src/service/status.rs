@@ -1,0 +1,153 @@
+//! The service layer's one error type and the one place where errors become
+//! gRPC statuses: bad input is INVALID_ARGUMENT naming the API field, an
+//! unknown model NOT_FOUND, a refused admission RESOURCE_EXHAUSTED, and
+//! INTERNAL is kept for bugs.
+
+use tonic::{Code, Status};
+
+use crate::engine::EngineError;
+use crate::registry::RegistryError;
+
+/// Why the service refused or failed a call.
+#[derive(Debug, thiserror::Error)]
+pub enum ServiceError {
+    /// Bad input, from the service's own checks or the engine's; names the
+    /// field.
+    #[error("{0}")]
+    Invalid(#[from] EngineError),
+    #[error("{0}")]
+    Registry(#[from] RegistryError),
+    /// A feature this build does not have.
+    #[error("{0}")]
+    Unimplemented(String),
+    /// Admission control refused the work: the compute pool had no free
+    /// thread before the call's deadline.
+    #[error("{0}")]
+    Exhausted(String),
+    /// A bug: an engine panic or a broken invariant.
+    #[error("internal error: {0}")]
+    Internal(String),
+    #[error("the gRPC server failed: {0}")]
+    Transport(#[from] tonic::transport::Error),
+    #[error("the reflection service could not be built: {0}")]
+    Reflection(#[from] tonic_reflection::server::Error),
+    #[error("{0}")]
+    Telemetry(#[from] crate::telemetry::TelemetryError),
+}
+
+impl ServiceError {
+    /// An INVALID_ARGUMENT about `field`.
+    pub fn invalid(field: impl Into<String>, message: impl Into<String>) -> ServiceError {
+        ServiceError::Invalid(EngineError::new(field, message))
+    }
+}
+
+/// The API's name for a field the engine or registry names in its own
+/// terms, so every message points at something the caller can change.
+fn api_field(field: &str) -> &str {
+    match field {
+        "width" => "neighbor_width",
+        "kernel.width" => "kernel_width",
+        "dataset.labels" => "dataset_labels",
+        "dataset.rows" => "dataset",
+        "players" => "features",
+        other => other,
+    }
+}
+
+fn invalid_argument(error: &EngineError) -> Status {
+    Status::invalid_argument(format!("{}: {}", api_field(&error.field), error.message))
+}
+
+/// The status a caller receives for `error`.
+pub fn status_of(error: &ServiceError) -> Status {
+    match error {
+        ServiceError::Invalid(engine) => invalid_argument(engine),
+        ServiceError::Registry(registry) => match registry {
+            RegistryError::Invalid(engine) => invalid_argument(engine),
+            RegistryError::TooLarge { .. } => Status::invalid_argument(registry.to_string()),
+            RegistryError::NotFound { .. } => Status::not_found(registry.to_string()),
+            // Storage trouble is the operator's to fix and may pass; it is
+            // not a bug in the request or the code.
+            RegistryError::InUse { .. } | RegistryError::Io { .. } => {
+                Status::unavailable(registry.to_string())
+            }
+        },
+        ServiceError::Unimplemented(message) => Status::unimplemented(message.clone()),
+        ServiceError::Exhausted(message) => Status::resource_exhausted(message.clone()),
+        ServiceError::Internal(_)
+        | ServiceError::Transport(_)
+        | ServiceError::Reflection(_)
+        | ServiceError::Telemetry(_) => Status::internal(error.to_string()),
+    }
+}
+
+impl From<ServiceError> for Status {
+    fn from(error: ServiceError) -> Status {
+        status_of(&error)
+    }
+}
+
+/// The status code as a metric label (`OK`, `INVALID_ARGUMENT`, …), spelled
+/// as in the gRPC status code list.
+pub fn code_label(code: Code) -> &'static str {
+    match code {
+        Code::Ok => "OK",
+        Code::Cancelled => "CANCELLED",
+        Code::Unknown => "UNKNOWN",
+        Code::InvalidArgument => "INVALID_ARGUMENT",
+        Code::DeadlineExceeded => "DEADLINE_EXCEEDED",
+        Code::NotFound => "NOT_FOUND",
+        Code::AlreadyExists => "ALREADY_EXISTS",
+        Code::PermissionDenied => "PERMISSION_DENIED",
+        Code::ResourceExhausted => "RESOURCE_EXHAUSTED",
+        Code::FailedPrecondition => "FAILED_PRECONDITION",
+        Code::Aborted => "ABORTED",
+        Code::OutOfRange => "OUT_OF_RANGE",
+        Code::Unimplemented => "UNIMPLEMENTED",
+        Code::Internal => "INTERNAL",
+        Code::Unavailable => "UNAVAILABLE",
+        Code::DataLoss => "DATA_LOSS",
+        Code::Unauthenticated => "UNAUTHENTICATED",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // The code choices follow the gRPC status code guide (grpc.io, "Status
+    // codes and their use in gRPC").
+
+    #[test]
+    fn engine_fields_are_renamed_to_the_api_fields() {
+        let status = status_of(&ServiceError::invalid("width", "must be > 0"));
+        assert_eq!(status.code(), Code::InvalidArgument);
+        assert!(
+            status.message().starts_with("neighbor_width:"),
+            "{}",
+            status.message()
+        );
+    }
+
+    #[test]
+    fn each_error_kind_gets_its_code() {
+        let not_found = ServiceError::Registry(RegistryError::NotFound {
+            model_id: "m".into(),
+            version: 3,
+        });
+        assert_eq!(status_of(&not_found).code(), Code::NotFound);
+        assert_eq!(
+            status_of(&ServiceError::Exhausted("busy".into())).code(),
+            Code::ResourceExhausted
+        );
+        assert_eq!(
+            status_of(&ServiceError::Unimplemented("onnx".into())).code(),
+            Code::Unimplemented
+        );
+        assert_eq!(
+            status_of(&ServiceError::Internal("bug".into())).code(),
+            Code::Internal
+        );
+    }
+}

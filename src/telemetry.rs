@@ -1,0 +1,105 @@
+//! Logs and metrics for operators: a tracing subscriber (human or JSON lines,
+//! filtered like `RUST_LOG`) and a Prometheus exporter on its own address.
+//! The metric names live here so the service and its tests agree on them.
+
+use std::net::SocketAddr;
+
+use metrics_exporter_prometheus::{Matcher, PrometheusBuilder};
+
+/// Requests by `rpc` and gRPC status `code` (counter).
+pub const REQUESTS: &str = "apportion_requests_total";
+/// Time from arrival to answer of successful Explain calls (histogram).
+pub const EXPLAIN_SECONDS: &str = "apportion_explain_seconds";
+/// Coalition values computed by Explain calls (counter).
+pub const COALITIONS_EVALUATED: &str = "apportion_coalitions_evaluated_total";
+/// Model rows predicted by Explain calls (counter).
+pub const MODEL_ROWS_EVALUATED: &str = "apportion_model_rows_evaluated_total";
+/// Coalition values served from the per-request cache (counter).
+pub const CACHE_HITS: &str = "apportion_cache_hits_total";
+/// Model versions currently registered (gauge).
+pub const REGISTERED_MODELS: &str = "apportion_registered_models";
+
+/// Bucket bounds of the latency histogram, in seconds: from well under a
+/// millisecond to the longest sensible budget.
+const LATENCY_BUCKETS: [f64; 12] = [
+    0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 5.0,
+];
+
+/// How log lines are written.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum LogFormat {
+    /// Readable lines for a terminal.
+    #[default]
+    Human,
+    /// One JSON object per line, for log collectors.
+    Json,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum TelemetryError {
+    #[error(
+        "log filter {filter:?} is not valid ({reason}); use RUST_LOG syntax such as `info,apportion=debug`"
+    )]
+    Filter { filter: String, reason: String },
+    #[error("a tracing subscriber is already installed in this process")]
+    TracingInstalled,
+    #[error("the Prometheus exporter could not start on {address}: {reason}")]
+    Metrics { address: SocketAddr, reason: String },
+}
+
+/// Installs the global tracing subscriber. `filter` uses `RUST_LOG` syntax.
+pub fn init_tracing(format: LogFormat, filter: &str) -> Result<(), TelemetryError> {
+    let env_filter =
+        tracing_subscriber::EnvFilter::try_new(filter).map_err(|e| TelemetryError::Filter {
+            filter: filter.to_string(),
+            reason: e.to_string(),
+        })?;
+    let builder = tracing_subscriber::fmt().with_env_filter(env_filter);
+    let installed = match format {
+        LogFormat::Human => builder.try_init(),
+        LogFormat::Json => builder.json().try_init(),
+    };
+    installed.map_err(|_| TelemetryError::TracingInstalled)
+}
+
+/// Installs the global metrics recorder and serves it for Prometheus at
+/// `http://address/metrics` (any path answers). Called inside a tokio
+/// runtime, the listener runs on that runtime; outside one, the exporter
+/// starts its own background thread, which outlives any runtime.
+pub fn install_metrics(address: SocketAddr) -> Result<(), TelemetryError> {
+    let failed = |reason: String| TelemetryError::Metrics { address, reason };
+    PrometheusBuilder::new()
+        .with_http_listener(address)
+        .set_buckets_for_metric(Matcher::Full(EXPLAIN_SECONDS.to_string()), &LATENCY_BUCKETS)
+        .map_err(|e| failed(e.to_string()))?
+        .install()
+        .map_err(|e| failed(e.to_string()))?;
+    describe_metrics();
+    Ok(())
+}
+
+/// Help texts shown beside each metric in the exposition.
+fn describe_metrics() {
+    metrics::describe_counter!(REQUESTS, "gRPC requests by rpc and status code");
+    metrics::describe_histogram!(
+        EXPLAIN_SECONDS,
+        metrics::Unit::Seconds,
+        "Explain latency from arrival to answer"
+    );
+    metrics::describe_counter!(COALITIONS_EVALUATED, "coalition values computed");
+    metrics::describe_counter!(MODEL_ROWS_EVALUATED, "model rows predicted");
+    metrics::describe_counter!(CACHE_HITS, "coalition values served from the request cache");
+    metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_bad_filter_is_refused_with_the_filter_named() {
+        // EnvFilter rejects an unparsable level (common practice, no source).
+        let err = init_tracing(LogFormat::Human, "apportion=loudest").unwrap_err();
+        assert!(err.to_string().contains("apportion=loudest"), "{err}");
+    }
+}

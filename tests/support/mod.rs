@@ -1,0 +1,97 @@
+//! Starts a real apportion gRPC server on 127.0.0.1:0 over a data directory,
+//! with generated clients connected to it, and stops it on request.
+
+#![allow(dead_code)]
+
+use std::net::SocketAddr;
+use std::path::Path;
+use std::sync::Arc;
+
+use apportion::registry::Registry;
+use apportion::service::proto::attributions_client::AttributionsClient;
+use apportion::service::proto::diagnostics_client::DiagnosticsClient;
+use apportion::service::proto::registry_client::RegistryClient;
+use apportion::service::{Config, ServiceError, State};
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+use tonic::transport::Channel;
+
+pub struct TestServer {
+    pub address: SocketAddr,
+    /// The server's own registry, for in-process comparisons.
+    pub registry: Arc<Registry>,
+    pub channel: Channel,
+    stop: oneshot::Sender<()>,
+    task: JoinHandle<Result<(), ServiceError>>,
+}
+
+/// A server with the default settings except `compute_threads = 2`.
+pub async fn start(data_dir: &Path) -> TestServer {
+    let config = Config {
+        data_dir: Some(data_dir.to_path_buf()),
+        compute_threads: 2,
+        ..Config::default()
+    };
+    start_with(config).await
+}
+
+pub async fn start_with(config: Config) -> TestServer {
+    let (state, problems) = State::open(&config).expect("the registry opens");
+    assert!(
+        problems.is_empty(),
+        "unexpected load problems: {problems:?}"
+    );
+    let registry = state.registry().clone();
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let address = listener.local_addr().expect("local address");
+    let (stop, stopped) = oneshot::channel::<()>();
+    let task = tokio::spawn(apportion::service::run(listener, state, async {
+        let _ = stopped.await;
+    }));
+    let channel = Channel::from_shared(format!("http://{address}"))
+        .expect("valid uri")
+        .connect()
+        .await
+        .expect("the server accepts connections");
+    TestServer {
+        address,
+        registry,
+        channel,
+        stop,
+        task,
+    }
+}
+
+impl TestServer {
+    pub fn registry_client(&self) -> RegistryClient<Channel> {
+        RegistryClient::new(self.channel.clone())
+    }
+
+    pub fn attributions_client(&self) -> AttributionsClient<Channel> {
+        AttributionsClient::new(self.channel.clone())
+    }
+
+    pub fn diagnostics_client(&self) -> DiagnosticsClient<Channel> {
+        DiagnosticsClient::new(self.channel.clone())
+    }
+
+    /// Shuts the server down and waits until it has released the data
+    /// directory.
+    pub async fn stop(self) {
+        let TestServer {
+            registry,
+            channel,
+            stop,
+            task,
+            ..
+        } = self;
+        drop(channel);
+        drop(registry);
+        let _ = stop.send(());
+        task.await
+            .expect("the server task ends")
+            .expect("the server stops cleanly");
+    }
+}
