@@ -1,6 +1,8 @@
-//! The `apportion` binary. `apportion demo` explains a few synthetic
-//! applicants of the demo screening model and prints what the engine found.
+//! The `apportion` binary: `serve` runs the gRPC service; `demo` explains a
+//! few synthetic applicants of the demo screening model in-process.
 
+use std::net::SocketAddr;
+use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::{Duration, Instant};
 
@@ -8,43 +10,119 @@ use apportion::demo::{self, Scenario};
 use apportion::engine::{Explanation, Players, Request, Subject, Target, explain};
 use apportion::model::{Model, logistic};
 use apportion::reasons::{DEFAULT_REASONS, principal_reasons};
+use apportion::service::{self, Config, State};
+use apportion::telemetry::{self, LogFormat};
+use clap::{Parser, Subcommand, ValueEnum};
 use ndarray::ArrayView2;
 
-const USAGE: &str = "usage: apportion demo [--seed N]
+#[derive(Parser)]
+#[command(
+    name = "apportion",
+    version,
+    about = "Explains individual model decisions"
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
 
-  demo    train the demo screening model on synthetic applicants and explain a few of them";
+#[derive(Subcommand)]
+enum Command {
+    /// Train the demo screening model on synthetic applicants and explain a few of them.
+    Demo {
+        /// Seed of the synthetic applicants and of the sampled estimators.
+        #[arg(long, default_value_t = 7)]
+        seed: u64,
+    },
+    /// Serve the gRPC API until interrupted (Ctrl-C).
+    Serve(ServeArgs),
+}
+
+#[derive(clap::Args)]
+struct ServeArgs {
+    /// Address of the gRPC endpoint.
+    #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
+    address: SocketAddr,
+    /// Directory of the model registry [default: $XDG_DATA_HOME/apportion or ~/.local/share/apportion].
+    #[arg(long, env = "APPORTION_DATA_DIR")]
+    data_dir: Option<PathBuf>,
+    /// Address of the Prometheus scrape endpoint.
+    #[arg(
+        long,
+        env = "APPORTION_METRICS_ADDRESS",
+        default_value = "127.0.0.1:9464"
+    )]
+    metrics_address: SocketAddr,
+    /// Log line format.
+    #[arg(long, env = "APPORTION_LOG_FORMAT", value_enum, default_value_t = LogStyle::Human)]
+    log_format: LogStyle,
+    /// Log filter, in the usual `target=level` form.
+    #[arg(long, env = "RUST_LOG", default_value = "info")]
+    log_filter: String,
+    /// Budget of an Explain call that asks for none, in milliseconds.
+    #[arg(long, env = "APPORTION_DEFAULT_BUDGET_MS", default_value_t = 200)]
+    default_budget_ms: u64,
+    /// Explain calls computed at once [default: the number of cores].
+    #[arg(long, env = "APPORTION_COMPUTE_THREADS")]
+    compute_threads: Option<usize>,
+}
+
+#[derive(Clone, Copy, ValueEnum)]
+enum LogStyle {
+    Human,
+    Json,
+}
 
 fn main() -> ExitCode {
-    let args: Vec<String> = std::env::args().skip(1).collect();
-    match args.first().map(String::as_str) {
-        Some("demo") => {
-            let seed = match args.get(1).map(String::as_str) {
-                None => 7,
-                Some("--seed") => match args.get(2).and_then(|s| s.parse().ok()) {
-                    Some(seed) => seed,
-                    None => return usage_error("--seed takes a whole number"),
-                },
-                Some(other) => return usage_error(&format!("unknown option {other:?}")),
-            };
-            match run_demo(seed) {
-                Ok(()) => ExitCode::SUCCESS,
-                Err(err) => {
-                    eprintln!("apportion: {err}");
-                    ExitCode::FAILURE
-                }
-            }
+    let result = match Cli::parse().command {
+        Command::Demo { seed } => run_demo(seed),
+        Command::Serve(args) => serve(args),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(err) => {
+            eprintln!("apportion: {err}");
+            ExitCode::FAILURE
         }
-        Some("-h" | "--help" | "help") => {
-            println!("{USAGE}");
-            ExitCode::SUCCESS
-        }
-        _ => usage_error("a command is required"),
     }
 }
 
-fn usage_error(why: &str) -> ExitCode {
-    eprintln!("apportion: {why}\n{USAGE}");
-    ExitCode::from(2)
+fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
+    let defaults = Config::default();
+    let config = Config {
+        address: args.address,
+        data_dir: args.data_dir,
+        metrics_address: Some(args.metrics_address),
+        log_format: match args.log_format {
+            LogStyle::Human => LogFormat::Human,
+            LogStyle::Json => LogFormat::Json,
+        },
+        log_filter: args.log_filter,
+        default_budget: Duration::from_millis(args.default_budget_ms),
+        compute_threads: args
+            .compute_threads
+            .unwrap_or(defaults.compute_threads)
+            .max(1),
+        ..defaults
+    };
+    telemetry::init_tracing(config.log_format, &config.log_filter)?;
+    let runtime = tokio::runtime::Runtime::new()?;
+    runtime.block_on(async {
+        if let Some(address) = config.metrics_address {
+            telemetry::install_metrics(address)?;
+        }
+        let (state, problems) = State::open(&config)?;
+        for problem in &problems {
+            tracing::warn!(%problem, "registry entry skipped");
+        }
+        let listener = tokio::net::TcpListener::bind(config.address).await?;
+        tracing::info!(address = %listener.local_addr()?, "serving");
+        let shutdown = async {
+            let _ = tokio::signal::ctrl_c().await;
+        };
+        service::run(listener, state, shutdown).await?;
+        Ok(())
+    })
 }
 
 fn run_demo(seed: u64) -> Result<(), Box<dyn std::error::Error>> {
