@@ -16,6 +16,7 @@
 //! licensed counsel.
 
 pub mod applicants;
+pub mod live;
 pub mod train;
 
 pub use applicants::{Applicants, FeatureSpec, features, generate};
