@@ -9,12 +9,14 @@
 //! - [`model`]: the [`model::Model`] trait and the model kinds (linear, tree
 //!   ensembles).
 //! - [`demo`]: the fictional housing co-operative: synthetic applicants, two trained models.
+//! - [`client`]: the thin gRPC client behind `apportion models` and `explain`.
 //! - [`reasons`]: attributions → principal reason statements.
 //! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
 //! - [`service`]: the gRPC API: conversions, error → status, handlers, `run`.
 //! - [`telemetry`]: log subscriber and Prometheus metrics.
 #![deny(unsafe_code)]
 
+pub mod client;
 pub mod demo;
 pub mod engine;
 pub mod model;

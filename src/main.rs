@@ -6,9 +6,10 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::{Duration, Instant};
 
-use apportion::demo;
+use apportion::service::proto;
 use apportion::service::{self, Config, State};
 use apportion::telemetry::{self, LogFormat};
+use apportion::{client, demo};
 use clap::{Parser, Subcommand, ValueEnum};
 
 #[derive(Parser)]
@@ -35,6 +36,48 @@ enum Command {
     },
     /// Serve the gRPC API until interrupted (Ctrl-C).
     Serve(ServeArgs),
+    /// List the models a server holds, one JSON object per version.
+    Models {
+        /// The server's gRPC address.
+        #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
+        address: String,
+    },
+    /// Explain instances from a CSV or JSON-lines file; one JSON object per instance.
+    Explain(ExplainArgs),
+}
+
+#[derive(clap::Args)]
+struct ExplainArgs {
+    /// The server's gRPC address.
+    #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
+    address: String,
+    #[arg(long)]
+    model_id: String,
+    /// Model version; 0 is the latest.
+    #[arg(long, default_value_t = 0)]
+    version: u64,
+    /// Instances: `.jsonl`/`.json` (an array per line, null = missing) or CSV.
+    #[arg(long)]
+    input: PathBuf,
+    /// marginal, fixed, independent, conditional_gaussian or conditional_neighbors.
+    #[arg(long, default_value = "marginal")]
+    removal: String,
+    /// output, probability or loss (loss needs --label).
+    #[arg(long, default_value = "output")]
+    target: String,
+    #[arg(long)]
+    label: Option<f64>,
+    /// shapley, banzhaf, leave_one_out, include_one, linear_fit or selection.
+    #[arg(long, default_value = "shapley")]
+    summary: String,
+    /// auto, exact, permutation, paired_regression, leverage_regression, msr, tree_exact or linear_exact.
+    #[arg(long, default_value = "auto")]
+    estimator: String,
+    /// Budget per instance in milliseconds; 0 is the server default.
+    #[arg(long, default_value_t = 0)]
+    budget_ms: u32,
+    #[arg(long, default_value_t = 0)]
+    seed: u64,
 }
 
 #[derive(clap::Args)]
@@ -76,6 +119,13 @@ fn main() -> ExitCode {
     let result = match Cli::parse().command {
         Command::Demo { seed, exit } => run_demo(seed, exit),
         Command::Serve(args) => serve(args),
+        Command::Models { address } => run_client(client::models(&address)),
+        Command::Explain(args) => match explain_template(&args) {
+            Ok(template) => client::read_instances(&args.input)
+                .map_err(|e| e.to_string().into())
+                .and_then(|rows| run_client(client::explain(&args.address, template, rows))),
+            Err(err) => Err(err),
+        },
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -84,6 +134,55 @@ fn main() -> ExitCode {
             ExitCode::FAILURE
         }
     }
+}
+
+/// Runs one client call and prints its answers as JSON lines.
+fn run_client(
+    call: impl std::future::Future<Output = Result<Vec<serde_json::Value>, client::Failure>>,
+) -> Result<(), Box<dyn std::error::Error>> {
+    let runtime = tokio::runtime::Runtime::new()?;
+    let answers = runtime.block_on(call).map_err(|e| e.to_string())?;
+    for answer in answers {
+        println!("{answer}");
+    }
+    Ok(())
+}
+
+/// The request every instance shares, from the flags; an unknown choice
+/// names its flag.
+fn explain_template(
+    args: &ExplainArgs,
+) -> Result<proto::ExplainRequest, Box<dyn std::error::Error>> {
+    fn choice(
+        flag: &str,
+        prefix: &str,
+        value: &str,
+        parse: fn(&str) -> Option<i32>,
+    ) -> Result<i32, String> {
+        parse(&format!("{prefix}_{}", value.to_uppercase()))
+            .ok_or_else(|| format!("--{flag}: unknown choice {value:?}"))
+    }
+    Ok(proto::ExplainRequest {
+        model_id: args.model_id.clone(),
+        version: args.version,
+        removal: choice("removal", "REMOVAL", &args.removal, |s| {
+            proto::Removal::from_str_name(s).map(|v| v as i32)
+        })?,
+        target: choice("target", "TARGET", &args.target, |s| {
+            proto::Target::from_str_name(s).map(|v| v as i32)
+        })?,
+        label: args.label,
+        summary: choice("summary", "SUMMARY", &args.summary, |s| {
+            proto::Summary::from_str_name(s).map(|v| v as i32)
+        })?,
+        estimator: choice("estimator", "ESTIMATOR", &args.estimator, |s| {
+            proto::Estimator::from_str_name(s).map(|v| v as i32)
+        })?,
+        budget_ms: args.budget_ms,
+        seed: args.seed,
+        request_id: "cli".into(),
+        ..Default::default()
+    })
 }
 
 fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
