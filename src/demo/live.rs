@@ -206,7 +206,7 @@ fn format_value(x: f64) -> String {
     }
 }
 
-fn matrix(rows: ArrayView2<'_, f64>) -> proto::Matrix {
+pub fn matrix(rows: ArrayView2<'_, f64>) -> proto::Matrix {
     proto::Matrix {
         rows: rows.nrows() as u32,
         cols: rows.ncols() as u32,
@@ -214,14 +214,14 @@ fn matrix(rows: ArrayView2<'_, f64>) -> proto::Matrix {
     }
 }
 
-fn linear_message(model: &LinearModel) -> proto::LinearModel {
+pub fn linear_message(model: &LinearModel) -> proto::LinearModel {
     proto::LinearModel {
         weights: model.weights().to_vec(),
         intercept: model.intercept(),
     }
 }
 
-fn ensemble_message(ensemble: &TreeEnsemble) -> proto::TreeEnsemble {
+pub fn ensemble_message(ensemble: &TreeEnsemble) -> proto::TreeEnsemble {
     proto::TreeEnsemble {
         trees: ensemble.trees().iter().map(tree_message).collect(),
         base_score: ensemble.base_score(),

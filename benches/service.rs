@@ -1,0 +1,216 @@
+//! Service throughput over loopback gRPC: requests per second and p50/p99
+//! latency of Explain beside the Echo RPC on the same server in the same
+//! run (the stack's limit).
+//!
+//! `cargo bench --bench service` (`-- --quick` for shorter rounds). Server
+//! and clients share this process and the machine's cores, as stated in the
+//! output.
+
+use std::time::{Duration, Instant};
+
+use apportion::demo::{self, live};
+use apportion::service::proto::{
+    self, attributions_client::AttributionsClient, diagnostics_client::DiagnosticsClient,
+    register_model_request::Model as ModelBody, registry_client::RegistryClient,
+};
+use apportion::service::{Config, State};
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use tonic::transport::Channel;
+
+const CHANNELS: usize = 4;
+const TASKS: usize = 16;
+
+#[derive(Clone)]
+enum Call {
+    Echo,
+    Explain(Box<proto::ExplainRequest>),
+}
+
+struct Measured {
+    per_second: f64,
+    p50_ms: f64,
+    p99_ms: f64,
+}
+
+async fn measure(channels: &[Channel], call: &Call, duration: Duration) -> Measured {
+    let deadline = Instant::now() + duration;
+    let mut tasks = Vec::new();
+    for task in 0..TASKS {
+        let channel = channels[task % channels.len()].clone();
+        let call = call.clone();
+        tasks.push(tokio::spawn(async move {
+            let mut echo = DiagnosticsClient::new(channel.clone());
+            let mut explain = AttributionsClient::new(channel);
+            let mut latencies = Vec::new();
+            while Instant::now() < deadline {
+                let start = Instant::now();
+                match &call {
+                    Call::Echo => {
+                        echo.echo(proto::EchoRequest {
+                            payload: b"ping".to_vec(),
+                        })
+                        .await
+                        .expect("echo");
+                    }
+                    Call::Explain(request) => {
+                        explain.explain(*request.clone()).await.expect("explain");
+                    }
+                }
+                latencies.push(start.elapsed());
+            }
+            latencies
+        }));
+    }
+    let started = Instant::now();
+    let mut latencies = Vec::new();
+    for task in tasks {
+        latencies.extend(task.await.expect("client task"));
+    }
+    let elapsed = started.elapsed().max(duration);
+    latencies.sort();
+    let at = |q: f64| latencies[((latencies.len() - 1) as f64 * q) as usize].as_secs_f64() * 1e3;
+    Measured {
+        per_second: latencies.len() as f64 / elapsed.as_secs_f64(),
+        p50_ms: at(0.50),
+        p99_ms: at(0.99),
+    }
+}
+
+fn machine() -> String {
+    let cpu = std::fs::read_to_string("/proc/cpuinfo")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("model name"))
+                .and_then(|l| l.split(':').nth(1))
+                .map(|m| m.trim().to_string())
+        })
+        .unwrap_or_else(|| "unknown CPU".into());
+    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
+    format!("{cpu}, {cores} cores")
+}
+
+fn main() {
+    let quick = std::env::args().any(|a| a == "--quick");
+    let round = Duration::from_millis(if quick { 1500 } else { 3000 });
+    let runtime = tokio::runtime::Runtime::new().expect("runtime");
+    runtime.block_on(async {
+        let data_dir = std::env::temp_dir().join(format!("apportion-bench-{}", std::process::id()));
+        let config = Config {
+            data_dir: Some(data_dir.clone()),
+            metrics_address: None,
+            ..Config::default()
+        };
+        let compute_threads = config.compute_threads;
+        let (state, _) = State::open(&config).expect("registry");
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind");
+        let address = listener.local_addr().expect("address");
+        let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
+        let server = tokio::spawn(apportion::service::run(listener, state, async {
+            let _ = stopped.await;
+        }));
+        let mut channels = Vec::new();
+        for _ in 0..CHANNELS {
+            channels.push(
+                Channel::from_shared(format!("http://{address}"))
+                    .expect("uri")
+                    .connect()
+                    .await
+                    .expect("connect"),
+            );
+        }
+        let mut registry = RegistryClient::new(channels[0].clone());
+
+        // (a) A 20-feature logistic model (bench data only).
+        let mut rng = ChaCha8Rng::seed_from_u64(1);
+        let background = Array2::from_shape_fn((100, 20), |_| rng.random_range(-1.0..1.0));
+        let features: Vec<proto::Feature> = (0..20)
+            .map(|j| proto::Feature { name: format!("x{j}"), ..Default::default() })
+            .collect();
+        registry
+            .register_model(proto::RegisterModelRequest {
+                model_id: "bench-linear".into(),
+                features,
+                model: Some(ModelBody::Linear(proto::LinearModel {
+                    weights: (0..20).map(|_| rng.random_range(-1.0..1.0)).collect(),
+                    intercept: 0.1,
+                })),
+                link: proto::Link::Logistic as i32,
+                background: Some(live::matrix(background.view())),
+                description: String::new(),
+            })
+            .await
+            .expect("register linear");
+        // (b) The demo tree ensemble.
+        let scenario = demo::scenario(7).expect("scenario");
+        registry
+            .register_model(proto::RegisterModelRequest {
+                model_id: "bench-trees".into(),
+                features: scenario
+                    .features
+                    .iter()
+                    .map(|f| proto::Feature { name: f.name.into(), group: f.group.into(), ..Default::default() })
+                    .collect(),
+                model: Some(ModelBody::Trees(live::ensemble_message(&scenario.trees))),
+                link: proto::Link::Logistic as i32,
+                background: Some(live::matrix(scenario.linear_background.view())),
+                description: String::new(),
+            })
+            .await
+            .expect("register trees");
+
+        let linear_request = proto::ExplainRequest {
+            model_id: "bench-linear".into(),
+            instance: (0..20).map(|j| j as f64 / 20.0).collect(),
+            ..Default::default()
+        };
+        let trees_request = proto::ExplainRequest {
+            model_id: "bench-trees".into(),
+            instance: scenario.linear_applicants.row(1).to_vec(),
+            ..Default::default()
+        };
+        // The cases must take the paths they are named after.
+        let mut explain = AttributionsClient::new(channels[0].clone());
+        for (request, expected) in [
+            (&linear_request, proto::Estimator::LinearExact),
+            (&trees_request, proto::Estimator::TreeExact),
+        ] {
+            let used = explain.explain(request.clone()).await.expect("explain").into_inner().estimator_used;
+            assert_eq!(used, expected as i32, "{} took another estimator", request.model_id);
+        }
+
+        let cases = [
+            ("Echo (the stack's limit)", Call::Echo),
+            ("Explain, 20-feature logistic, LINEAR_EXACT", Call::Explain(Box::new(linear_request))),
+            ("Explain, demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT", Call::Explain(Box::new(trees_request))),
+        ];
+        println!("machine: {}", machine());
+        println!(
+            "server and clients in one process; {TASKS} client tasks over {CHANNELS} channels; {compute_threads} compute threads; {:.1} s per case after a warm-up",
+            round.as_secs_f64()
+        );
+        println!();
+        println!("| case | requests/s | p50 ms | p99 ms | share of echo throughput |");
+        println!("|---|---|---|---|---|");
+        let mut echo_rate = 0.0;
+        for (name, call) in cases {
+            measure(&channels, &call, Duration::from_millis(300)).await;
+            let m = measure(&channels, &call, round).await;
+            if matches!(call, Call::Echo) {
+                echo_rate = m.per_second;
+            }
+            println!(
+                "| {name} | {:.0} | {:.2} | {:.2} | {:.0}% |",
+                m.per_second,
+                m.p50_ms,
+                m.p99_ms,
+                100.0 * m.per_second / echo_rate
+            );
+        }
+        let _ = stop.send(());
+        let _ = server.await;
+        let _ = std::fs::remove_dir_all(&data_dir);
+    });
+}
