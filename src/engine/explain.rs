@@ -200,11 +200,15 @@ pub fn explain(subject: &Subject, request: &Request, started: Instant) -> Result
             let Structure::Linear(linear) = model.structure() else {
                 unreachable!("the planner checked the model is linear")
             };
-            let references = reference(&request.removal)?;
-            let mean: Vec<f64> = references
-                .mean_axis(ndarray::Axis(0))
-                .map(|m| m.to_vec())
-                .ok_or_else(|| EngineError::new("background", "needs at least one row"))?;
+            // The closed form needs only the reference mean: no copy of the
+            // background.
+            let mean: Vec<f64> = match &request.removal {
+                RemovalChoice::Fixed(Some(values)) => values.clone(),
+                _ => background
+                    .mean_axis(ndarray::Axis(0))
+                    .map(|m| m.to_vec())
+                    .ok_or_else(|| EngineError::new("background", "needs at least one row"))?,
+            };
             estimate::linear::explain(linear, subject.players, &request.instance, &mean)?
         }
         EstimatorKind::Exact => estimate::exact::explain(&cached, request.summary)?,
