@@ -4,7 +4,7 @@ Python grpcio, an independent gRPC implementation (shared/TESTING.md,
 
 Usage: python grpc_client_check.py --address 127.0.0.1:50051 --stubs DIR
 (DIR holds the modules generated from proto/apportion/v1/apportion.proto).
-Prints one line per check and, last, "python client: N passed, M failed".
+Prints one line per check and, last, "grpcio: N passed, M failed".
 """
 
 import argparse
@@ -113,7 +113,7 @@ def main():
     check("the deleted model is gone", "py-trees" not in {m.model_id for m in listed.models})
 
     passed = sum(results)
-    print(f"python client: {passed} passed, {len(results) - passed} failed")
+    print(f"grpcio: {passed} passed, {len(results) - passed} failed")
     return 0 if passed == len(results) else 1
 
 
