@@ -28,8 +28,8 @@ const ENUMERATION_BATCH: usize = 4096;
 /// the fit estimates `argmin Σ_S k(S) (v(S) - v(∅) - Σ_{i∈S} phi_i)²` subject
 /// to `Σ phi = v(all) - v(∅)`, which for the Shapley kernel is the Shapley
 /// value ("A unified approach to interpreting model predictions", NeurIPS
-/// 2017; pairing and the std errors follow "Improving KernelSHAP: practical
-/// Shapley value estimation via linear regression", AISTATS 2021, PMLR 130).
+/// 2017; pairing and the std errors follow "Practical Shapley value
+/// estimation via linear regression", AISTATS 2021, PMLR 130).
 ///
 /// Std errors linearise the constrained fit around the estimate: its error
 /// is a sum of independent per-pair terms, whose sample variance gives the
