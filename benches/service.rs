@@ -155,7 +155,7 @@ fn main() {
                     .collect(),
                 model: Some(ModelBody::Trees(live::ensemble_message(&scenario.trees))),
                 link: proto::Link::Logistic as i32,
-                background: Some(live::matrix(scenario.linear_background.view())),
+                background: Some(live::matrix(scenario.background.view())),
                 description: String::new(),
             })
             .await
@@ -168,7 +168,7 @@ fn main() {
         };
         let trees_request = proto::ExplainRequest {
             model_id: "bench-trees".into(),
-            instance: scenario.linear_applicants.row(1).to_vec(),
+            instance: scenario.applicants.row(1).to_vec(),
             ..Default::default()
         };
         // The cases must take the paths they are named after.

@@ -99,6 +99,20 @@ fn tree_spec(model_id: &str, seed: u64) -> ModelSpec {
     }
 }
 
+/// A tree model whose background lacks some values (NaN), as tree models
+/// allow: the first feature of every third row and one whole row.
+fn tree_with_missing_background(model_id: &str, seed: u64) -> ModelSpec {
+    let mut spec = tree_spec(model_id, seed);
+    let cols = spec.background.cols;
+    for row in (0..spec.background.rows).step_by(3) {
+        spec.background.values[row * cols] = f64::NAN;
+    }
+    for value in &mut spec.background.values[cols..2 * cols] {
+        *value = f64::NAN;
+    }
+    spec
+}
+
 /// The model's raw outputs on its own background, as bit patterns.
 fn background_prediction_bits(registry: &Registry, model_id: &str, version: u64) -> Vec<u64> {
     let entry = registry.get(model_id, version).unwrap();
@@ -214,6 +228,7 @@ fn acknowledged_models_come_back_bit_for_bit_after_a_restart() {
         linear_spec("rent", 12),
         tree_spec("arrears", 13),
         tree_spec("deposit.v2_final-3", 14),
+        tree_with_missing_background("history", 15),
     ];
     let (registry, _) = Registry::open(dir.path()).unwrap();
     let mut before = Vec::new();
@@ -428,6 +443,12 @@ fn invalid_registrations_name_the_field_and_leave_nothing_behind() {
             with_tree(&|t| t.threshold[3] = f64::INFINITY),
         ),
         ("trees.value", with_tree(&|t| t.value[4] = f64::NAN)),
+        // Trees take missing values in their background, never infinities.
+        ("background.values", {
+            let mut spec = trees.clone();
+            spec.background.values[5] = f64::NEG_INFINITY;
+            spec
+        }),
         (
             "description",
             with(&|s| s.description = "x".repeat(65 * 1024)),
@@ -450,6 +471,27 @@ fn invalid_registrations_name_the_field_and_leave_nothing_behind() {
     // change alone.
     assert_eq!(registry.register(base).unwrap().version, 1);
     assert_eq!(registry.register(trees).unwrap().version, 2);
+}
+
+#[test]
+fn a_missing_background_value_is_stored_as_null() {
+    // The record layout in the registry module: JSON has no NaN, so a
+    // missing background value is written as null and read back as NaN.
+    let dir = tempfile::tempdir().unwrap();
+    let (registry, _) = Registry::open(dir.path()).unwrap();
+    let spec = tree_with_missing_background("history", 61);
+    let info = registry.register(spec.clone()).unwrap();
+    let text = fs::read_to_string(record_path(dir.path(), "history", info.version)).unwrap();
+    let record: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let stored = record["spec"]["background"]["values"].as_array().unwrap();
+    for (value, original) in stored.iter().zip(&spec.background.values) {
+        if original.is_nan() {
+            assert!(value.is_null(), "{value}");
+        } else {
+            assert_eq!(value.as_f64(), Some(*original));
+        }
+    }
+    assert_eq!(info.checksum, spec_checksum(&spec).unwrap());
 }
 
 #[test]

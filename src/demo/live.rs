@@ -44,9 +44,8 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
             features: features.clone(),
             model: Some(ModelBody::Trees(ensemble_message(&scenario.trees))),
             link: proto::Link::Logistic as i32,
-            // The registry stores finite backgrounds only, so no rental history is
-            // recorded as 0 months here, as for the logistic model.
-            background: Some(matrix(scenario.linear_background.view())),
+            // Trees take missing values, so "no rental history" stays missing.
+            background: Some(matrix(scenario.background.view())),
             description: "Demo: boosted trees on synthetic applicants (fictional co-operative)"
                 .into(),
         })

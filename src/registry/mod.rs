@@ -130,12 +130,30 @@ pub enum ModelBody {
     },
 }
 
-/// The background (reference) sample, row-major.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+/// The background (reference) sample, row-major. NaN marks a missing value
+/// (allowed only for models that take missing inputs); on disk it is `null`,
+/// since JSON has no NaN.
+#[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct Background {
     pub rows: usize,
     pub cols: usize,
+    #[serde(with = "store::missing_as_null")]
     pub values: Vec<f64>,
+}
+
+/// Equal shapes and equal values, NaN equal to NaN: a missing value read
+/// back from disk is the same background as the one registered.
+impl PartialEq for Background {
+    fn eq(&self, other: &Background) -> bool {
+        self.rows == other.rows
+            && self.cols == other.cols
+            && self.values.len() == other.values.len()
+            && self
+                .values
+                .iter()
+                .zip(&other.values)
+                .all(|(a, b)| a == b || (a.is_nan() && b.is_nan()))
+    }
 }
 
 /// A registration request.
@@ -412,9 +430,9 @@ fn prepare(spec: ModelSpec, checksum: Option<String>) -> Result<Prepared> {
     let reason_statements = per_player(&players, &spec.features, "features.reason_text", |f| {
         &f.reason_text
     })?;
-    check_background(&spec.background, &spec.features)?;
     let link = Link::from(spec.link);
     let model = build_model(&spec.model, link, spec.features.len())?;
+    check_background(&spec.background, &spec.features, model.accepts_missing())?;
     let checksum = match checksum {
         Some(checksum) => checksum,
         None => spec_checksum(&spec)?,
@@ -489,7 +507,13 @@ fn per_player(
     Ok(out)
 }
 
-fn check_background(background: &Background, features: &[FeatureSpec]) -> Result<()> {
+/// Shapes and sizes, and every value finite, except that NaN (missing) is
+/// allowed where the model takes missing inputs.
+fn check_background(
+    background: &Background,
+    features: &[FeatureSpec],
+    accepts_missing: bool,
+) -> Result<()> {
     if background.rows == 0 {
         return Err(EngineError::new(
             "background.rows",
@@ -539,14 +563,17 @@ fn check_background(background: &Background, features: &[FeatureSpec]) -> Result
             "send fewer background rows",
         ));
     }
-    if let Some(at) = background.values.iter().position(|v| !v.is_finite()) {
+    let refused = |v: &f64| v.is_infinite() || (v.is_nan() && !accepts_missing);
+    if let Some(at) = background.values.iter().position(refused) {
         let (row, col) = (at / background.cols, at % background.cols);
+        let why = if background.values[at].is_nan() {
+            "is missing (NaN), and only tree models take missing values; impute or drop that row"
+        } else {
+            "is infinite; clip or drop that row"
+        };
         return Err(EngineError::new(
             "background.values",
-            format!(
-                "row {row}, column {col} ({:?}) is not a finite number; impute or drop that row",
-                features[col].name
-            ),
+            format!("row {row}, column {col} ({:?}) {why}", features[col].name),
         )
         .into());
     }

@@ -100,6 +100,22 @@ pub fn spec_checksum(spec: &ModelSpec) -> Result<String, RegistryError> {
     Ok(digest.iter().map(|byte| format!("{byte:02x}")).collect())
 }
 
+/// Serde for a background's values: NaN (a missing value) is written as
+/// `null` and read back as NaN, since JSON has no NaN. Infinities never get
+/// here: registration refuses them.
+pub(crate) mod missing_as_null {
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(values: &[f64], serializer: S) -> Result<S::Ok, S::Error> {
+        serializer.collect_seq(values.iter().map(|v| (!v.is_nan()).then_some(*v)))
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<Vec<f64>, D::Error> {
+        let values = Vec::<Option<f64>>::deserialize(deserializer)?;
+        Ok(values.into_iter().map(|v| v.unwrap_or(f64::NAN)).collect())
+    }
+}
+
 /// A record read back, its checksum verified and its header consistent with
 /// its path.
 pub(crate) struct LoadedRecord {

@@ -103,17 +103,24 @@ fn checked_shape(field: &str, matrix: &proto::Matrix) -> Result<(usize, usize)> 
             "needs at least one row and one column",
         ));
     }
-    if let Some(index) = matrix.values.iter().position(|v| !v.is_finite()) {
-        return Err(ServiceError::invalid(
+    Ok((rows, cols))
+}
+
+/// Refuses NaN and infinities in a matrix whose shape has been checked.
+/// (A background may hold NaN for models that take missing values; the
+/// registry decides that, knowing the model.)
+fn require_finite(field: &str, matrix: &proto::Matrix, cols: usize) -> Result<()> {
+    match matrix.values.iter().position(|v| !v.is_finite()) {
+        Some(index) => Err(ServiceError::invalid(
             field,
             format!(
                 "value {index} (row {}, column {}) is not finite",
                 index / cols,
                 index % cols
             ),
-        ));
+        )),
+        None => Ok(()),
     }
-    Ok((rows, cols))
 }
 
 impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
@@ -322,6 +329,7 @@ fn target_from(request: &proto::ExplainRequest) -> Result<Target> {
                 )
             })?;
             let (rows, cols) = checked_shape("dataset", matrix)?;
+            require_finite("dataset", matrix, cols)?;
             if request.dataset_labels.len() != rows {
                 return Err(ServiceError::invalid(
                     "dataset_labels",
