@@ -1,9 +1,10 @@
-//! The thin gRPC client behind `apportion models` and `apportion explain`:
-//! reads instances from CSV or JSON lines and writes one JSON object per
-//! answer, for scripts and operators.
+//! The thin gRPC client behind `apportion register`, `apportion models` and
+//! `apportion explain`: reads model files and instances (CSV or JSON lines)
+//! and writes one JSON object per answer, for scripts and operators.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
+use serde::Deserialize;
 use serde_json::{Value, json};
 use tonic::transport::Channel;
 
@@ -22,6 +23,20 @@ async fn connect(address: &str) -> Result<Channel, Failure> {
     Ok(Channel::from_shared(endpoint)?.connect().await?)
 }
 
+/// What `models` and `register` print about one model version.
+fn info_json(m: &proto::ModelInfo) -> Value {
+    json!({
+        "model_id": m.model_id,
+        "version": m.version,
+        "model_kind": m.model_kind,
+        "features": m.features.iter().map(|f| &f.name).collect::<Vec<_>>(),
+        "background_rows": m.background_rows,
+        "row_cost_ns": m.row_cost_ns,
+        "registered_unix_ms": m.registered_unix_ms,
+        "checksum": m.checksum,
+    })
+}
+
 /// Every registered model version, one JSON object each.
 pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
     let mut registry = RegistryClient::new(connect(address).await?);
@@ -29,21 +44,183 @@ pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
         .list_models(proto::ListModelsRequest {})
         .await?
         .into_inner();
-    Ok(listed
-        .models
-        .iter()
-        .map(|m| {
-            json!({
-                "model_id": m.model_id,
-                "version": m.version,
-                "model_kind": m.model_kind,
-                "features": m.features.iter().map(|f| &f.name).collect::<Vec<_>>(),
-                "background_rows": m.background_rows,
-                "row_cost_ns": m.row_cost_ns,
-                "checksum": m.checksum,
+    Ok(listed.models.iter().map(info_json).collect())
+}
+
+/// A model file for `apportion register`: one JSON object.
+///
+/// ```json
+/// { "model_id": "screening", "description": "…", "link": "logistic",
+///   "features": [{ "name": "income", "group": "", "reason_code": "R01",
+///                  "reason_text": "Income is low for the rent" }, …],
+///   "model": { "kind": "linear", "weights": [0.8, …], "intercept": -1.2 },
+///   "background": [[3100.0, …], [2400.0, null, …]] }
+/// ```
+///
+/// `model` may instead be `{ "kind": "trees", "base_score": 0.0, "trees":
+/// [{ "feature", "threshold", "left", "right", "value", "missing_left" }] }`
+/// with the node arrays of the API's `Tree` message. `link` defaults to
+/// `identity`; `group`, `reason_code`, `reason_text` and `description` may
+/// be left out; `background` may be left out when a background file is
+/// given. Rows are arrays of numbers, `null` for a missing value.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelFile {
+    #[serde(default)]
+    pub model_id: String,
+    #[serde(default)]
+    pub description: String,
+    #[serde(default = "identity")]
+    pub link: String,
+    pub features: Vec<FeatureEntry>,
+    pub model: ModelEntry,
+    #[serde(default)]
+    pub background: Option<Vec<Vec<Option<f64>>>>,
+}
+
+fn identity() -> String {
+    "identity".into()
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FeatureEntry {
+    pub name: String,
+    #[serde(default)]
+    pub group: String,
+    #[serde(default)]
+    pub reason_code: String,
+    #[serde(default)]
+    pub reason_text: String,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
+pub enum ModelEntry {
+    Linear {
+        weights: Vec<f64>,
+        intercept: f64,
+    },
+    Trees {
+        trees: Vec<TreeEntry>,
+        #[serde(default)]
+        base_score: f64,
+    },
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TreeEntry {
+    pub feature: Vec<i32>,
+    pub threshold: Vec<f64>,
+    pub left: Vec<i32>,
+    pub right: Vec<i32>,
+    pub value: Vec<f64>,
+    #[serde(default)]
+    pub missing_left: Vec<bool>,
+}
+
+/// What `apportion register` sends: the model file, its `model_id`
+/// replaced when `model_id` is given, its background replaced by the rows
+/// of `background` when that is given. The server validates the rest.
+pub fn registration(
+    model_file: &Path,
+    background: Option<&PathBuf>,
+    model_id: Option<&str>,
+) -> Result<proto::RegisterModelRequest, Failure> {
+    let text = std::fs::read_to_string(model_file)
+        .map_err(|e| format!("{}: cannot read: {e}", model_file.display()))?;
+    let file: ModelFile = serde_json::from_str(&text)
+        .map_err(|e| format!("{}: not a model file: {e}", model_file.display()))?;
+    let rows = match (background, file.background) {
+        (Some(path), _) => read_instances(path)?,
+        (None, Some(rows)) => rows
+            .into_iter()
+            .map(|row| row.into_iter().map(|v| v.unwrap_or(f64::NAN)).collect())
+            .collect(),
+        (None, None) => {
+            return Err(format!(
+                "{}: has no \"background\"; add one or pass --background",
+                model_file.display()
+            )
+            .into());
+        }
+    };
+    let cols = file.features.len();
+    if let Some((at, row)) = rows.iter().enumerate().find(|(_, row)| row.len() != cols) {
+        return Err(format!(
+            "background row {}: has {} values for {cols} features",
+            at + 1,
+            row.len()
+        )
+        .into());
+    }
+    let link = proto::Link::from_str_name(&format!("LINK_{}", file.link.to_uppercase()))
+        .ok_or_else(|| {
+            format!(
+                "link: unknown link {:?}; use identity or logistic",
+                file.link
+            )
+        })?;
+    let model = match file.model {
+        ModelEntry::Linear { weights, intercept } => {
+            proto::register_model_request::Model::Linear(proto::LinearModel { weights, intercept })
+        }
+        ModelEntry::Trees { trees, base_score } => {
+            proto::register_model_request::Model::Trees(proto::TreeEnsemble {
+                trees: trees
+                    .into_iter()
+                    .map(|t| proto::Tree {
+                        feature: t.feature,
+                        threshold: t.threshold,
+                        left: t.left,
+                        right: t.right,
+                        value: t.value,
+                        missing_left: t.missing_left,
+                    })
+                    .collect(),
+                base_score,
             })
-        })
-        .collect())
+        }
+    };
+    let too_many = |_| {
+        format!(
+            "background: {} rows are more than a request can carry",
+            rows.len()
+        )
+    };
+    let matrix_rows = u32::try_from(rows.len()).map_err(too_many)?;
+    Ok(proto::RegisterModelRequest {
+        model_id: model_id.map_or(file.model_id, str::to_string),
+        features: file
+            .features
+            .into_iter()
+            .map(|f| proto::Feature {
+                name: f.name,
+                group: f.group,
+                reason_code: f.reason_code,
+                reason_text: f.reason_text,
+            })
+            .collect(),
+        model: Some(model),
+        link: link as i32,
+        background: Some(proto::Matrix {
+            rows: matrix_rows,
+            cols: u32::try_from(cols).map_err(|_| "features: too many")?,
+            values: rows.into_iter().flatten().collect(),
+        }),
+        description: file.description,
+    })
+}
+
+/// Registers one model version; the answer is what `models` prints of it.
+pub async fn register(
+    address: &str,
+    request: proto::RegisterModelRequest,
+) -> Result<Vec<Value>, Failure> {
+    let mut registry = RegistryClient::new(connect(address).await?);
+    let info = registry.register_model(request).await?.into_inner();
+    Ok(vec![info_json(&info)])
 }
 
 /// Explains each instance with the choices in `template` (its `instance`

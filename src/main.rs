@@ -4,13 +4,13 @@
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::process::ExitCode;
-use std::time::{Duration, Instant};
+use std::time::Instant;
 
 use apportion::service::proto;
-use apportion::service::{self, Config, State};
+use apportion::service::{self, Config, ConfigLayer, State};
 use apportion::telemetry::{self, LogFormat};
 use apportion::{client, demo};
-use clap::{Parser, Subcommand, ValueEnum};
+use clap::{Parser, Subcommand};
 
 #[derive(Parser)]
 #[command(
@@ -41,6 +41,21 @@ enum Command {
         /// The server's gRPC address.
         #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
         address: String,
+    },
+    /// Register a model from a JSON model file; prints the new version as JSON.
+    Register {
+        /// The server's gRPC address.
+        #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
+        address: String,
+        /// The model file (see the README's "Registering a model").
+        #[arg(long)]
+        model: PathBuf,
+        /// Background rows as CSV or JSON lines, in place of the file's own.
+        #[arg(long)]
+        background: Option<PathBuf>,
+        /// Model id, in place of the file's own.
+        #[arg(long)]
+        model_id: Option<String>,
     },
     /// Explain instances from a CSV or JSON-lines file; one JSON object per instance.
     Explain(ExplainArgs),
@@ -80,39 +95,62 @@ struct ExplainArgs {
     seed: u64,
 }
 
+/// Settings of `serve`. Each is taken from its flag, else its environment
+/// variable, else the `--config` file, else the default shown.
 #[derive(clap::Args)]
 struct ServeArgs {
-    /// Address of the gRPC endpoint.
-    #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
-    address: SocketAddr,
+    /// A TOML file of settings, keyed like the flags (`data_dir = "..."`).
+    #[arg(long, env = "APPORTION_CONFIG")]
+    config: Option<PathBuf>,
+    /// Print the settings that would be used, as TOML, and exit.
+    #[arg(long)]
+    print_config: bool,
+    /// Address of the gRPC endpoint [default: 127.0.0.1:50051].
+    #[arg(long, env = "APPORTION_ADDRESS")]
+    address: Option<SocketAddr>,
     /// Directory of the model registry [default: $XDG_DATA_HOME/apportion or ~/.local/share/apportion].
     #[arg(long, env = "APPORTION_DATA_DIR")]
     data_dir: Option<PathBuf>,
-    /// Address of the Prometheus scrape endpoint.
-    #[arg(
-        long,
-        env = "APPORTION_METRICS_ADDRESS",
-        default_value = "127.0.0.1:9464"
-    )]
-    metrics_address: SocketAddr,
-    /// Log line format.
-    #[arg(long, env = "APPORTION_LOG_FORMAT", value_enum, default_value_t = LogStyle::Human)]
-    log_format: LogStyle,
-    /// Log filter, in the usual `target=level` form.
-    #[arg(long, env = "RUST_LOG", default_value = "info")]
-    log_filter: String,
-    /// Budget of an Explain call that asks for none, in milliseconds.
-    #[arg(long, env = "APPORTION_DEFAULT_BUDGET_MS", default_value_t = 200)]
-    default_budget_ms: u64,
+    /// Address of the Prometheus scrape endpoint [default: 127.0.0.1:9464].
+    #[arg(long, env = "APPORTION_METRICS_ADDRESS")]
+    metrics_address: Option<SocketAddr>,
+    /// Log line format [default: human].
+    #[arg(long, env = "APPORTION_LOG_FORMAT", value_enum)]
+    log_format: Option<LogFormat>,
+    /// Log filter, in the usual `target=level` form [default: info].
+    #[arg(long, env = "RUST_LOG")]
+    log_filter: Option<String>,
+    /// Budget of an Explain call that asks for none, in milliseconds [default: 200].
+    #[arg(long, env = "APPORTION_DEFAULT_BUDGET_MS")]
+    default_budget_ms: Option<u64>,
     /// Explain calls computed at once [default: the number of cores].
     #[arg(long, env = "APPORTION_COMPUTE_THREADS")]
     compute_threads: Option<usize>,
+    /// Largest request or answer, in MiB [default: 64].
+    #[arg(long, env = "APPORTION_MAX_MESSAGE_MIB")]
+    max_message_mib: Option<usize>,
 }
 
-#[derive(Clone, Copy, ValueEnum)]
-enum LogStyle {
-    Human,
-    Json,
+impl ServeArgs {
+    /// Flags and environment (clap has already chosen between those two),
+    /// over the file, over the defaults.
+    fn config(self) -> Result<Config, Box<dyn std::error::Error>> {
+        let file = match &self.config {
+            Some(path) => ConfigLayer::read(path)?,
+            None => ConfigLayer::default(),
+        };
+        let given = ConfigLayer {
+            address: self.address,
+            data_dir: self.data_dir,
+            metrics_address: self.metrics_address,
+            log_format: self.log_format,
+            log_filter: self.log_filter,
+            default_budget_ms: self.default_budget_ms,
+            compute_threads: self.compute_threads,
+            max_message_mib: self.max_message_mib,
+        };
+        Ok(given.over(file).resolve()?)
+    }
 }
 
 fn main() -> ExitCode {
@@ -120,6 +158,14 @@ fn main() -> ExitCode {
         Command::Demo { seed, exit } => run_demo(seed, exit),
         Command::Serve(args) => serve(args),
         Command::Models { address } => run_client(client::models(&address)),
+        Command::Register {
+            address,
+            model,
+            background,
+            model_id,
+        } => client::registration(&model, background.as_ref(), model_id.as_deref())
+            .map_err(|e| e.to_string().into())
+            .and_then(|request| run_client(client::register(&address, request))),
         Command::Explain(args) => match explain_template(&args) {
             Ok(template) => client::read_instances(&args.input)
                 .map_err(|e| e.to_string().into())
@@ -186,23 +232,12 @@ fn explain_template(
 }
 
 fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
-    let defaults = Config::default();
-    let config = Config {
-        address: args.address,
-        data_dir: args.data_dir,
-        metrics_address: Some(args.metrics_address),
-        log_format: match args.log_format {
-            LogStyle::Human => LogFormat::Human,
-            LogStyle::Json => LogFormat::Json,
-        },
-        log_filter: args.log_filter,
-        default_budget: Duration::from_millis(args.default_budget_ms),
-        compute_threads: args
-            .compute_threads
-            .unwrap_or(defaults.compute_threads)
-            .max(1),
-        ..defaults
-    };
+    let print_only = args.print_config;
+    let config = args.config()?;
+    if print_only {
+        print!("{}", config.to_toml());
+        return Ok(());
+    }
     telemetry::init_tracing(config.log_format, &config.log_filter)?;
     let runtime = tokio::runtime::Runtime::new()?;
     runtime.block_on(async {

@@ -26,7 +26,18 @@ const LATENCY_BUCKETS: [f64; 12] = [
 ];
 
 /// How log lines are written.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[derive(
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
+)]
+#[serde(rename_all = "snake_case")]
 pub enum LogFormat {
     /// Readable lines for a terminal.
     #[default]

@@ -4,10 +4,12 @@
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
 
+pub mod config;
 pub mod convert;
 pub mod server;
 pub mod status;
 
+pub use config::{ConfigError, ConfigLayer};
 pub use server::{ComputePool, Config, State, run};
 pub use status::{ServiceError, status_of};
 

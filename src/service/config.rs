@@ -1,0 +1,268 @@
+//! Where `apportion serve` gets its settings: flags, then environment
+//! variables, then a TOML file, then the defaults of [`Config`]. Each source
+//! is a [`ConfigLayer`] whose unset entries fall through to the next.
+//!
+//! The file holds the same keys as the flags, in snake case:
+//!
+//! ```toml
+//! address = "0.0.0.0:50051"
+//! data_dir = "/var/lib/apportion"     # relative paths are taken from the file's folder
+//! metrics_address = "0.0.0.0:9464"
+//! log_format = "json"                 # or "human"
+//! log_filter = "info,apportion=debug"
+//! default_budget_ms = 200
+//! compute_threads = 4
+//! max_message_mib = 64
+//! ```
+//!
+//! An unknown key is an error, so a misspelt setting is never silently
+//! ignored.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde::{Deserialize, Serialize};
+
+use super::Config;
+use crate::telemetry::LogFormat;
+
+/// Largest `max_message_mib`: gRPC frames carry a 32-bit length.
+const MAX_MESSAGE_MIB: usize = 4095;
+
+/// One source of settings; `None` leaves a setting to the source below.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ConfigLayer {
+    pub address: Option<SocketAddr>,
+    pub data_dir: Option<PathBuf>,
+    pub metrics_address: Option<SocketAddr>,
+    pub log_format: Option<LogFormat>,
+    pub log_filter: Option<String>,
+    pub default_budget_ms: Option<u64>,
+    pub compute_threads: Option<usize>,
+    pub max_message_mib: Option<usize>,
+}
+
+/// A setting that cannot be used, naming the file or key.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("config file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("config file {path}: {message}")]
+    Parse { path: PathBuf, message: String },
+    #[error("{key}: {message}")]
+    Invalid { key: &'static str, message: String },
+}
+
+impl ConfigLayer {
+    /// Reads a TOML file. A relative `data_dir` in it is taken from the
+    /// file's folder, so a file means the same from any working directory.
+    pub fn read(path: &Path) -> Result<ConfigLayer, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let mut layer: ConfigLayer = toml::from_str(&text).map_err(|error| ConfigError::Parse {
+            path: path.to_path_buf(),
+            message: error.to_string().trim_end().to_string(),
+        })?;
+        if let Some(dir) = &layer.data_dir
+            && dir.is_relative()
+        {
+            let folder = path.parent().unwrap_or(Path::new(""));
+            layer.data_dir = Some(folder.join(dir));
+        }
+        Ok(layer)
+    }
+
+    /// This layer's settings, and `lower`'s where this one has none.
+    pub fn over(self, lower: ConfigLayer) -> ConfigLayer {
+        ConfigLayer {
+            address: self.address.or(lower.address),
+            data_dir: self.data_dir.or(lower.data_dir),
+            metrics_address: self.metrics_address.or(lower.metrics_address),
+            log_format: self.log_format.or(lower.log_format),
+            log_filter: self.log_filter.or(lower.log_filter),
+            default_budget_ms: self.default_budget_ms.or(lower.default_budget_ms),
+            compute_threads: self.compute_threads.or(lower.compute_threads),
+            max_message_mib: self.max_message_mib.or(lower.max_message_mib),
+        }
+    }
+
+    /// The settings over [`Config::default`], each checked.
+    pub fn resolve(self) -> Result<Config, ConfigError> {
+        let defaults = Config::default();
+        let invalid = |key: &'static str, message: String| ConfigError::Invalid { key, message };
+        if self.default_budget_ms == Some(0) {
+            return Err(invalid(
+                "default_budget_ms",
+                "must be at least 1 (it is the budget of calls that ask for none)".into(),
+            ));
+        }
+        if self.compute_threads == Some(0) {
+            return Err(invalid("compute_threads", "must be at least 1".into()));
+        }
+        if let Some(mib) = self.max_message_mib
+            && !(1..=MAX_MESSAGE_MIB).contains(&mib)
+        {
+            return Err(invalid(
+                "max_message_mib",
+                format!("must be between 1 and {MAX_MESSAGE_MIB}; got {mib}"),
+            ));
+        }
+        if let Some(filter) = &self.log_filter
+            && let Err(error) = tracing_subscriber::EnvFilter::try_new(filter)
+        {
+            return Err(invalid("log_filter", format!("{filter:?}: {error}")));
+        }
+        Ok(Config {
+            address: self.address.unwrap_or(defaults.address),
+            data_dir: self.data_dir.or(defaults.data_dir),
+            metrics_address: self.metrics_address.or(defaults.metrics_address),
+            log_format: self.log_format.unwrap_or(defaults.log_format),
+            log_filter: self.log_filter.unwrap_or(defaults.log_filter),
+            default_budget: self
+                .default_budget_ms
+                .map_or(defaults.default_budget, Duration::from_millis),
+            compute_threads: self.compute_threads.unwrap_or(defaults.compute_threads),
+            max_message_bytes: self
+                .max_message_mib
+                .map_or(defaults.max_message_bytes, |mib| mib * 1024 * 1024),
+            ..defaults
+        })
+    }
+}
+
+impl Config {
+    /// The settings as a file would hold them, for `serve --print-config`.
+    pub fn to_toml(&self) -> String {
+        let layer = ConfigLayer {
+            address: Some(self.address),
+            data_dir: self
+                .data_dir
+                .clone()
+                .or_else(crate::registry::default_data_dir),
+            metrics_address: self.metrics_address,
+            log_format: Some(self.log_format),
+            log_filter: Some(self.log_filter.clone()),
+            default_budget_ms: Some(self.default_budget.as_millis() as u64),
+            compute_threads: Some(self.compute_threads),
+            max_message_mib: Some(self.max_message_bytes / (1024 * 1024)),
+        };
+        toml::to_string(&layer).expect("plain keys and values always serialise")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn write(dir: &Path, text: &str) -> PathBuf {
+        let path = dir.join("apportion.toml");
+        std::fs::write(&path, text).unwrap();
+        path
+    }
+
+    #[test]
+    fn a_file_fills_what_the_layers_above_leave_unset() {
+        // Common practice for layered settings (no source): the first layer
+        // that sets a value wins.
+        let dir = tempfile::tempdir().unwrap();
+        let file = ConfigLayer::read(&write(
+            dir.path(),
+            "address = \"0.0.0.0:7000\"\ncompute_threads = 3\nlog_format = \"json\"\n\
+             data_dir = \"registry\"\ndefault_budget_ms = 50\n",
+        ))
+        .unwrap();
+        let flags = ConfigLayer {
+            compute_threads: Some(1),
+            ..ConfigLayer::default()
+        };
+        let config = flags.over(file).resolve().unwrap();
+        assert_eq!(config.address, "0.0.0.0:7000".parse().unwrap());
+        assert_eq!(config.compute_threads, 1);
+        assert_eq!(config.log_format, LogFormat::Json);
+        assert_eq!(config.default_budget, Duration::from_millis(50));
+        assert_eq!(config.data_dir, Some(dir.path().join("registry")));
+        let defaults = Config::default();
+        assert_eq!(config.metrics_address, defaults.metrics_address);
+        assert_eq!(config.max_message_bytes, defaults.max_message_bytes);
+    }
+
+    #[test]
+    fn the_printed_settings_read_back_as_the_same_settings() {
+        let config = ConfigLayer {
+            data_dir: Some("/srv/apportion".into()),
+            max_message_mib: Some(8),
+            ..ConfigLayer::default()
+        }
+        .resolve()
+        .unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        let again = ConfigLayer::read(&write(dir.path(), &config.to_toml()))
+            .unwrap()
+            .resolve()
+            .unwrap();
+        assert_eq!(again.to_toml(), config.to_toml());
+        assert_eq!(again.max_message_bytes, 8 * 1024 * 1024);
+    }
+
+    #[test]
+    fn bad_files_and_values_name_the_file_or_key() {
+        let dir = tempfile::tempdir().unwrap();
+        let cases = [
+            ("adress = \"127.0.0.1:1\"\n", "adress"),
+            ("address = \"localhost\"\n", "address"),
+            ("compute_threads = -2\n", "compute_threads"),
+            ("log_format = \"xml\"\n", "log_format"),
+            ("address = \n", "apportion.toml"),
+        ];
+        for (text, named) in cases {
+            let error = ConfigLayer::read(&write(dir.path(), text)).unwrap_err();
+            let message = error.to_string();
+            assert!(message.contains("apportion.toml"), "{message}");
+            assert!(message.contains(named), "{text:?}: {message}");
+        }
+        let missing = ConfigLayer::read(&dir.path().join("absent.toml")).unwrap_err();
+        assert!(missing.to_string().contains("absent.toml"), "{missing}");
+
+        let invalid = [
+            (
+                ConfigLayer {
+                    compute_threads: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "compute_threads",
+            ),
+            (
+                ConfigLayer {
+                    default_budget_ms: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "default_budget_ms",
+            ),
+            (
+                ConfigLayer {
+                    max_message_mib: Some(5000),
+                    ..ConfigLayer::default()
+                },
+                "max_message_mib",
+            ),
+            (
+                ConfigLayer {
+                    log_filter: Some("apportion=loudest".into()),
+                    ..ConfigLayer::default()
+                },
+                "log_filter",
+            ),
+        ];
+        for (layer, key) in invalid {
+            let error = layer.resolve().unwrap_err();
+            assert!(error.to_string().starts_with(key), "{error}");
+        }
+    }
+}

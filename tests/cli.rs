@@ -1,0 +1,281 @@
+//! The binary as operators and scripts use it: `serve` settings from flags,
+//! environment and a TOML file, and the thin client (`register`, `models`,
+//! `explain`) against a real server on loopback.
+
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::path::Path;
+use std::process::{Child, Command, Output};
+use std::time::{Duration, Instant};
+
+use serde_json::Value;
+
+/// The binary with none of its settings inherited from the environment.
+fn apportion() -> Command {
+    let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
+    for variable in [
+        "APPORTION_CONFIG",
+        "APPORTION_ADDRESS",
+        "APPORTION_DATA_DIR",
+        "APPORTION_METRICS_ADDRESS",
+        "APPORTION_LOG_FORMAT",
+        "APPORTION_DEFAULT_BUDGET_MS",
+        "APPORTION_COMPUTE_THREADS",
+        "APPORTION_MAX_MESSAGE_MIB",
+        "RUST_LOG",
+    ] {
+        command.env_remove(variable);
+    }
+    command
+}
+
+fn succeeded(output: Output) -> String {
+    let stdout = String::from_utf8_lossy(&output.stdout).into_owned();
+    assert!(
+        output.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    stdout
+}
+
+fn json_lines(stdout: &str) -> Vec<Value> {
+    stdout
+        .lines()
+        .map(|line| serde_json::from_str(line).unwrap())
+        .collect()
+}
+
+fn free_address() -> SocketAddr {
+    TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+}
+
+#[test]
+fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
+    // Common practice for layered settings (no source).
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("apportion.toml");
+    std::fs::write(
+        &file,
+        "address = \"127.0.0.1:7001\"\ncompute_threads = 3\nlog_format = \"json\"\n\
+         default_budget_ms = 50\ndata_dir = \"registry\"\n",
+    )
+    .unwrap();
+    let output = apportion()
+        .args(["serve", "--print-config", "--compute-threads", "1"])
+        .env("APPORTION_CONFIG", &file)
+        .env("APPORTION_ADDRESS", "127.0.0.1:7002")
+        .env("APPORTION_COMPUTE_THREADS", "2")
+        .output()
+        .unwrap();
+    let printed: toml::Table = toml::from_str(&succeeded(output)).unwrap();
+    assert_eq!(printed["compute_threads"].as_integer(), Some(1), "flag");
+    assert_eq!(printed["address"].as_str(), Some("127.0.0.1:7002"), "env");
+    assert_eq!(printed["log_format"].as_str(), Some("json"), "file");
+    assert_eq!(printed["default_budget_ms"].as_integer(), Some(50), "file");
+    let data_dir = dir.path().join("registry");
+    assert_eq!(
+        printed["data_dir"].as_str(),
+        data_dir.to_str(),
+        "relative to the file"
+    );
+    assert_eq!(
+        printed["metrics_address"].as_str(),
+        Some("127.0.0.1:9464"),
+        "default"
+    );
+    assert_eq!(printed["max_message_mib"].as_integer(), Some(64), "default");
+
+    std::fs::write(&file, "compute_thread = 3\n").unwrap();
+    let output = apportion()
+        .args(["serve", "--print-config", "--config"])
+        .arg(&file)
+        .output()
+        .unwrap();
+    assert!(!output.status.success());
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(stderr.contains("compute_thread"), "{stderr}");
+}
+
+/// A server started from a config file, killed when dropped.
+struct Server {
+    child: Child,
+    address: SocketAddr,
+}
+
+impl Server {
+    fn start(dir: &Path) -> Server {
+        let address = free_address();
+        let config = dir.join("serve.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "address = \"{address}\"\nmetrics_address = \"{}\"\ndata_dir = \"registry\"\n",
+                free_address()
+            ),
+        )
+        .unwrap();
+        let child = apportion()
+            .args(["serve", "--config"])
+            .arg(&config)
+            .spawn()
+            .unwrap();
+        let started = Instant::now();
+        while TcpStream::connect(address).is_err() {
+            assert!(
+                started.elapsed() < Duration::from_secs(60),
+                "the server never listened"
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        Server { child, address }
+    }
+
+    fn client(&self, command: &str) -> Command {
+        let mut client = apportion();
+        client.args([command, "--address", &self.address.to_string()]);
+        client
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+#[test]
+fn the_thin_client_registers_lists_and_explains() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = Server::start(dir.path());
+
+    // A logistic model with its background inline.
+    let weights = [0.8, -1.5, 0.25];
+    let background = [[1.0, 2.0, 3.0], [3.0, 0.0, 1.0], [2.0, 1.0, -1.0]];
+    let linear = dir.path().join("linear.json");
+    std::fs::write(
+        &linear,
+        serde_json::json!({
+            "model_id": "screening",
+            "link": "logistic",
+            "features": [
+                {"name": "income", "reason_code": "R1", "reason_text": "Income is low"},
+                {"name": "arrears"},
+                {"name": "tenure"},
+            ],
+            "model": {"kind": "linear", "weights": weights, "intercept": -0.5},
+            "background": background,
+        })
+        .to_string(),
+    )
+    .unwrap();
+    let registered = json_lines(&succeeded(
+        server
+            .client("register")
+            .arg("--model")
+            .arg(&linear)
+            .output()
+            .unwrap(),
+    ));
+    assert_eq!(registered[0]["model_id"], "screening");
+    assert_eq!(registered[0]["version"], 1);
+    assert_eq!(registered[0]["background_rows"], 3);
+
+    // A one-split tree whose background comes from a CSV file with a
+    // missing cell, under another id.
+    let trees = dir.path().join("trees.json");
+    std::fs::write(
+        &trees,
+        serde_json::json!({
+            "features": [{"name": "income"}, {"name": "arrears"}],
+            "model": {"kind": "trees", "base_score": 0.5, "trees": [{
+                "feature": [1, -1, -1], "threshold": [0.5, 0.0, 0.0],
+                "left": [1, -1, -1], "right": [2, -1, -1], "value": [0.0, 1.0, -1.0],
+                "missing_left": [false, false, false],
+            }]},
+        })
+        .to_string(),
+    )
+    .unwrap();
+    let csv = dir.path().join("background.csv");
+    std::fs::write(&csv, "income,arrears\n1,0\n2,\n3,1\n").unwrap();
+    let registered = json_lines(&succeeded(
+        server
+            .client("register")
+            .args(["--model-id", "history", "--model"])
+            .arg(&trees)
+            .arg("--background")
+            .arg(&csv)
+            .output()
+            .unwrap(),
+    ));
+    assert_eq!(registered[0]["model_id"], "history");
+    assert_eq!(registered[0]["model_kind"], "trees");
+
+    let listed = json_lines(&succeeded(server.client("models").output().unwrap()));
+    let mut ids: Vec<&str> = listed
+        .iter()
+        .map(|m| m["model_id"].as_str().unwrap())
+        .collect();
+    ids.sort();
+    assert_eq!(ids, ["history", "screening"]);
+
+    // Shapley values of a linear model under marginal removal, on the raw
+    // output: w_j (x_j − mean_j) (Štrumbelj & Kononenko, "Explaining
+    // prediction models and individual predictions with feature
+    // contributions", Knowledge and Information Systems 2014).
+    let instances = dir.path().join("instances.jsonl");
+    std::fs::write(&instances, "[4.0, 1.0, 0.0]\n[0.0, 3.0, 2.0]\n").unwrap();
+    let answers = json_lines(&succeeded(
+        server
+            .client("explain")
+            .args(["--model-id", "screening", "--input"])
+            .arg(&instances)
+            .output()
+            .unwrap(),
+    ));
+    assert_eq!(answers.len(), 2);
+    let rows = [[4.0, 1.0, 0.0], [0.0, 3.0, 2.0]];
+    for (answer, x) in answers.iter().zip(rows) {
+        assert_eq!(answer["estimator"], "ESTIMATOR_LINEAR_EXACT");
+        for (j, attribution) in answer["attributions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .enumerate()
+        {
+            let mean = background.iter().map(|row| row[j]).sum::<f64>() / 3.0;
+            let expected = weights[j] * (x[j] - mean);
+            let got = attribution["value"].as_f64().unwrap();
+            assert!((got - expected).abs() < 1e-12, "{j}: {got} vs {expected}");
+        }
+    }
+
+    // A model the server refuses: the status names the field, and the
+    // server keeps serving.
+    std::fs::write(
+        &linear,
+        serde_json::json!({
+            "model_id": "broken",
+            "features": [{"name": "income"}, {"name": "arrears"}],
+            "model": {"kind": "linear", "weights": [1.0], "intercept": 0.0},
+            "background": [[1.0, 2.0]],
+        })
+        .to_string(),
+    )
+    .unwrap();
+    let refused = server
+        .client("register")
+        .arg("--model")
+        .arg(&linear)
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
+    let stderr = String::from_utf8_lossy(&refused.stderr);
+    assert!(stderr.contains("linear.weights"), "{stderr}");
+    let listed = json_lines(&succeeded(server.client("models").output().unwrap()));
+    assert_eq!(listed.len(), 2);
+}
