@@ -140,6 +140,7 @@ fn main() {
                 link: proto::Link::Logistic as i32,
                 background: Some(live::matrix(background.view())),
                 description: String::new(),
+                ..Default::default()
             })
             .await
             .expect("register linear");
@@ -157,6 +158,7 @@ fn main() {
                 link: proto::Link::Logistic as i32,
                 background: Some(live::matrix(scenario.background.view())),
                 description: String::new(),
+                ..Default::default()
             })
             .await
             .expect("register trees");

@@ -59,7 +59,9 @@ pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
 ///
 /// `model` may instead be `{ "kind": "trees", "base_score": 0.0, "trees":
 /// [{ "feature", "threshold", "left", "right", "value", "missing_left" }] }`
-/// with the node arrays of the API's `Tree` message. `link` defaults to
+/// with the node arrays of the API's `Tree` message, or `{ "kind": "onnx",
+/// "path": "model.onnx", "output": "probabilities", "column": 1 }` (path
+/// relative to the model file; output and column as in the API). `link` defaults to
 /// `identity`; `group`, `reason_code`, `reason_text` and `description` may
 /// be left out; `background` may be left out when a background file is
 /// given. Rows are arrays of numbers, `null` for a missing value.
@@ -105,6 +107,14 @@ pub enum ModelEntry {
         trees: Vec<TreeEntry>,
         #[serde(default)]
         base_score: f64,
+    },
+    /// An ONNX file, its path relative to the model file.
+    Onnx {
+        path: PathBuf,
+        #[serde(default)]
+        output: String,
+        #[serde(default)]
+        column: u32,
     },
 }
 
@@ -162,7 +172,19 @@ pub fn registration(
                 file.link
             )
         })?;
+    let (mut onnx_output, mut onnx_output_column) = (String::new(), 0);
     let model = match file.model {
+        ModelEntry::Onnx {
+            path,
+            output,
+            column,
+        } => {
+            let path = model_file.parent().unwrap_or(Path::new("")).join(path);
+            let graph = std::fs::read(&path)
+                .map_err(|e| format!("{}: cannot read: {e}", path.display()))?;
+            (onnx_output, onnx_output_column) = (output, column);
+            proto::register_model_request::Model::Onnx(graph)
+        }
         ModelEntry::Linear { weights, intercept } => {
             proto::register_model_request::Model::Linear(proto::LinearModel { weights, intercept })
         }
@@ -210,6 +232,8 @@ pub fn registration(
             values: rows.into_iter().flatten().collect(),
         }),
         description: file.description,
+        onnx_output,
+        onnx_output_column,
     })
 }
 

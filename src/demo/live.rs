@@ -48,6 +48,7 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
             background: Some(matrix(scenario.background.view())),
             description: "Demo: boosted trees on synthetic applicants (fictional co-operative)"
                 .into(),
+            ..Default::default()
         })
         .await?
         .into_inner();
@@ -60,6 +61,7 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
             background: Some(matrix(scenario.linear_background.view())),
             description:
                 "Demo: logistic regression on synthetic applicants (fictional co-operative)".into(),
+            ..Default::default()
         })
         .await?
         .into_inner();

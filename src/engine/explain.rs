@@ -253,6 +253,15 @@ pub fn explain(subject: &Subject, request: &Request, started: Instant) -> Result
             }
         }
     };
+    let finite = estimate.value_full.is_finite()
+        && estimate.value_empty.is_finite()
+        && estimate.values.iter().all(|v| v.is_finite());
+    if !finite {
+        return Err(EngineError::new(
+            "model",
+            "gave a non-finite output for this instance or a coalition of it; nothing can be attributed",
+        ));
+    }
     Ok(Explanation {
         estimate,
         estimator: chosen.estimator,

@@ -3,9 +3,13 @@
 //! its [`Link`] says how a margin becomes a probability.
 
 mod linear;
+#[cfg(feature = "onnx")]
+mod onnx;
 pub mod trees;
 
 pub use linear::LinearModel;
+#[cfg(feature = "onnx")]
+pub use onnx::OnnxModel;
 pub use trees::{Tree, TreeEnsemble};
 
 use ndarray::ArrayView2;

@@ -54,6 +54,8 @@ pub const MAX_BACKGROUND_ROWS: usize = 100_000;
 pub const MAX_BACKGROUND_BYTES: usize = 64 * 1024 * 1024;
 /// Most features a model may declare.
 pub const MAX_FEATURES: usize = 10_000;
+/// Largest ONNX graph, in bytes.
+pub const MAX_ONNX_BYTES: usize = 64 * 1024 * 1024;
 /// Most tree nodes in one ensemble, summed over its trees.
 pub const MAX_TREE_NODES: usize = 4_000_000;
 /// Longest feature name, group, reason code or reason text, in bytes.
@@ -116,7 +118,7 @@ pub struct TreeBody {
     pub missing_left: Vec<bool>,
 }
 
-/// The model itself. Non-exhaustive: more kinds (ONNX) will follow.
+/// The model itself.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
 #[non_exhaustive]
@@ -127,6 +129,15 @@ pub enum ModelBody {
     Trees {
         trees: Vec<TreeBody>,
         base_score: f64,
+    },
+    /// An ONNX graph (`ModelProto` bytes, hex on disk) taking
+    /// `[batch, features]`; output = column `column` of the graph output
+    /// named `output` (empty: the first output).
+    Onnx {
+        #[serde(with = "store::bytes_as_hex")]
+        graph: Vec<u8>,
+        output: String,
+        column: usize,
     },
 }
 
@@ -648,12 +659,67 @@ fn build_model(body: &ModelBody, link: Link, inputs: usize) -> Result<Arc<dyn Mo
                 inputs,
             )?))
         }
+        ModelBody::Onnx {
+            graph,
+            output,
+            column,
+        } => build_onnx(graph, output, *column, link, inputs),
     }
+}
+
+#[cfg(feature = "onnx")]
+fn build_onnx(
+    graph: &[u8],
+    output: &str,
+    column: usize,
+    link: Link,
+    inputs: usize,
+) -> Result<Arc<dyn Model>> {
+    if graph.len() > MAX_ONNX_BYTES {
+        return Err(too_large(
+            "onnx",
+            graph.len(),
+            MAX_ONNX_BYTES,
+            "bytes",
+            "register a smaller graph",
+        ));
+    }
+    check_text("onnx_output", output, MAX_TEXT_BYTES)?;
+    Ok(Arc::new(crate::model::OnnxModel::try_new(
+        graph, inputs, output, column, link,
+    )?))
+}
+
+#[cfg(not(feature = "onnx"))]
+fn build_onnx(_: &[u8], _: &str, _: usize, _: Link, _: usize) -> Result<Arc<dyn Model>> {
+    Err(EngineError::new(
+        "onnx",
+        "this build has no ONNX runtime (built without the `onnx` feature)",
+    )
+    .into())
 }
 
 /// Nanoseconds per row of a batched prediction over `rows`, timed over
 /// repeated passes until at least [`ROW_COST_MIN_TIME`] has elapsed. A
 /// measurement for the planner, not a guarantee.
+/// The model's outputs on its background must be numbers: a NaN or
+/// infinite output would make every attribution meaningless.
+fn check_outputs(model: &dyn Model, background: ArrayView2<'_, f64>) -> Result<()> {
+    let mut out = vec![0.0; background.nrows()];
+    model.predict(background, &mut out);
+    match out.iter().position(|v| !v.is_finite()) {
+        Some(row) => Err(EngineError::new(
+            "model",
+            format!(
+                "gives {} on background row {row}; only finite outputs can be explained",
+                out[row]
+            ),
+        )
+        .into()),
+        None => Ok(()),
+    }
+}
+
 fn measure_row_cost(model: &dyn Model, rows: ArrayView2<'_, f64>) -> f64 {
     let mut out = vec![0.0; rows.nrows()];
     let start = Instant::now();
@@ -752,6 +818,7 @@ impl Registry {
     /// persists it durably; only then is it served.
     pub fn register(&self, spec: ModelSpec) -> Result<ModelInfo> {
         let prepared = prepare(spec, None)?;
+        check_outputs(prepared.model.as_ref(), prepared.background.view())?;
         let row_cost_ns = measure_row_cost(prepared.model.as_ref(), prepared.background.view());
         let mut entry = prepared.into_entry();
         entry.info.row_cost_ns = row_cost_ns;

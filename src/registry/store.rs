@@ -116,6 +116,37 @@ pub(crate) mod missing_as_null {
     }
 }
 
+/// Serde for model bytes: lower-case hex, two characters a byte.
+pub(crate) mod bytes_as_hex {
+    use serde::de::Error;
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(bytes: &[u8], serializer: S) -> Result<S::Ok, S::Error> {
+        let mut text = String::with_capacity(bytes.len() * 2);
+        for byte in bytes {
+            text.push(char::from_digit(u32::from(byte >> 4), 16).unwrap_or('0'));
+            text.push(char::from_digit(u32::from(byte & 0xf), 16).unwrap_or('0'));
+        }
+        serializer.serialize_str(&text)
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<Vec<u8>, D::Error> {
+        let text = <&str>::deserialize(deserializer)?;
+        if text.len() % 2 != 0 {
+            return Err(D::Error::custom("hex text of odd length"));
+        }
+        text.as_bytes()
+            .chunks_exact(2)
+            .map(|pair| {
+                std::str::from_utf8(pair)
+                    .ok()
+                    .and_then(|digits| u8::from_str_radix(digits, 16).ok())
+                    .ok_or_else(|| D::Error::custom("not hex"))
+            })
+            .collect()
+    }
+}
+
 /// A record read back, its checksum verified and its header consistent with
 /// its path.
 pub(crate) struct LoadedRecord {

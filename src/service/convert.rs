@@ -148,9 +148,16 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                     .collect(),
                 base_score: ensemble.base_score,
             },
+            #[cfg(feature = "onnx")]
+            Some(proto::register_model_request::Model::Onnx(graph)) => ModelBody::Onnx {
+                graph,
+                output: request.onnx_output,
+                column: request.onnx_output_column as usize,
+            },
+            #[cfg(not(feature = "onnx"))]
             Some(proto::register_model_request::Model::Onnx(_)) => {
                 return Err(ServiceError::Unimplemented(
-                    "onnx: ONNX import is not available in this build; register the model as `linear` or `trees`"
+                    "onnx: this build has no ONNX runtime (built without the `onnx` feature)"
                         .to_string(),
                 ));
             }

@@ -1,0 +1,325 @@
+//! ONNX models over real gRPC: a linear graph built here from the ONNX
+//! operator definitions (MatMul, Add: onnx.ai operator documentation) must
+//! give the same attributions as the same weights registered as a linear
+//! model, and the closed form; it must survive a restart; and graphs that
+//! cannot be used are refused naming the field. The cross-check against
+//! onnxruntime on exported scikit-learn models is in `.ci/grpcio-check`.
+
+#![cfg(feature = "onnx")]
+
+mod support;
+
+use apportion::service::proto::{self, register_model_request::Model};
+use prost_011::Message;
+use tract_onnx::pb;
+use tract_onnx::pb::tensor_shape_proto::{Dimension, dimension};
+use tract_onnx::pb::type_proto;
+
+const FLOAT: i32 = pb::tensor_proto::DataType::Float as i32;
+const DOUBLE: i32 = pb::tensor_proto::DataType::Double as i32;
+
+fn value_info(name: &str, elem_type: i32, dims: &[Option<i64>]) -> pb::ValueInfoProto {
+    pb::ValueInfoProto {
+        name: name.into(),
+        r#type: Some(pb::TypeProto {
+            value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                elem_type,
+                shape: Some(pb::TensorShapeProto {
+                    dim: dims
+                        .iter()
+                        .map(|d| Dimension {
+                            value: Some(match d {
+                                Some(size) => dimension::Value::DimValue(*size),
+                                None => dimension::Value::DimParam("N".into()),
+                            }),
+                            ..Default::default()
+                        })
+                        .collect(),
+                }),
+            })),
+            ..Default::default()
+        }),
+        ..Default::default()
+    }
+}
+
+fn initializer(name: &str, elem_type: i32, dims: &[i64], values: &[f64]) -> pb::TensorProto {
+    let mut tensor = pb::TensorProto {
+        name: name.into(),
+        data_type: elem_type,
+        dims: dims.to_vec(),
+        ..Default::default()
+    };
+    if elem_type == DOUBLE {
+        tensor.double_data = values.to_vec();
+    } else {
+        tensor.float_data = values.iter().map(|&v| v as f32).collect();
+    }
+    tensor
+}
+
+fn node(op: &str, inputs: &[&str], output: &str) -> pb::NodeProto {
+    pb::NodeProto {
+        op_type: op.into(),
+        name: output.into(),
+        input: inputs.iter().map(|s| s.to_string()).collect(),
+        output: vec![output.into()],
+        ..Default::default()
+    }
+}
+
+/// y = x · w + b as an ONNX graph: input `x` [N, p], output `y` [N, 1].
+fn linear_graph(weights: &[f64], intercept: f64, elem_type: i32) -> Vec<u8> {
+    let p = weights.len() as i64;
+    let graph = pb::GraphProto {
+        name: "linear".into(),
+        node: vec![
+            node("MatMul", &["x", "w"], "xw"),
+            node("Add", &["xw", "b"], "y"),
+        ],
+        initializer: vec![
+            initializer("w", elem_type, &[p, 1], weights),
+            initializer("b", elem_type, &[1], &[intercept]),
+        ],
+        input: vec![value_info("x", elem_type, &[None, Some(p)])],
+        output: vec![value_info("y", elem_type, &[None, Some(1)])],
+        ..Default::default()
+    };
+    pb::ModelProto {
+        ir_version: 7,
+        opset_import: vec![pb::OperatorSetIdProto {
+            domain: String::new(),
+            version: 13,
+        }],
+        graph: Some(graph),
+        ..Default::default()
+    }
+    .encode_to_vec()
+}
+
+const WEIGHTS: [f64; 4] = [0.75, -1.25, 0.5, 2.0];
+const INTERCEPT: f64 = -0.3;
+
+fn background() -> proto::Matrix {
+    let rows = 16;
+    proto::Matrix {
+        rows,
+        cols: 4,
+        values: (0..rows * 4)
+            .map(|k| ((k * 37 % 23) as f64) / 7.0 - 1.5)
+            .collect(),
+    }
+}
+
+fn request(model_id: &str, model: Model) -> proto::RegisterModelRequest {
+    proto::RegisterModelRequest {
+        model_id: model_id.into(),
+        features: ["income", "arrears", "tenure", "savings"]
+            .iter()
+            .map(|name| proto::Feature {
+                name: name.to_string(),
+                ..Default::default()
+            })
+            .collect(),
+        model: Some(model),
+        link: proto::Link::Logistic as i32,
+        background: Some(background()),
+        ..Default::default()
+    }
+}
+
+fn explain_request(
+    model_id: &str,
+    removal: proto::Removal,
+    target: proto::Target,
+) -> proto::ExplainRequest {
+    proto::ExplainRequest {
+        model_id: model_id.into(),
+        instance: vec![1.5, -0.5, 2.0, 0.25],
+        removal: removal as i32,
+        target: target as i32,
+        label: (target == proto::Target::Loss).then_some(1.0),
+        seed: 5,
+        ..Default::default()
+    }
+}
+
+#[tokio::test]
+async fn an_onnx_linear_graph_is_explained_like_the_same_linear_model() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    let mut registry = server.registry_client();
+    let onnx = registry
+        .register_model(request(
+            "onnx",
+            Model::Onnx(linear_graph(&WEIGHTS, INTERCEPT, DOUBLE)),
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(onnx.model_kind, "onnx");
+    let float = registry
+        .register_model(request(
+            "onnx-float",
+            Model::Onnx(linear_graph(&WEIGHTS, INTERCEPT, FLOAT)),
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(float.model_kind, "onnx");
+    registry
+        .register_model(request(
+            "linear",
+            Model::Linear(proto::LinearModel {
+                weights: WEIGHTS.to_vec(),
+                intercept: INTERCEPT,
+            }),
+        ))
+        .await
+        .unwrap();
+
+    let mut attributions = server.attributions_client();
+    let background = background();
+    let mean: Vec<f64> = (0..4)
+        .map(|j| {
+            (0..background.rows as usize)
+                .map(|i| background.values[i * 4 + j])
+                .sum::<f64>()
+                / f64::from(background.rows)
+        })
+        .collect();
+    // Shapley values of a linear model under marginal removal, raw output:
+    // w_j (x_j − mean_j) (Štrumbelj & Kononenko, "Explaining prediction
+    // models and individual predictions with feature contributions",
+    // Knowledge and Information Systems 2014).
+    let marginal = attributions
+        .explain(explain_request(
+            "onnx",
+            proto::Removal::Marginal,
+            proto::Target::Output,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(marginal.estimator_used, proto::Estimator::Exact as i32);
+    let x = [1.5, -0.5, 2.0, 0.25];
+    for (j, a) in marginal.attributions.iter().enumerate() {
+        let expected = WEIGHTS[j] * (x[j] - mean[j]);
+        assert!(
+            (a.value - expected).abs() < 1e-12,
+            "{j}: {} vs {expected}",
+            a.value
+        );
+    }
+
+    // Every removal and target, against the linear model (exact enumeration
+    // on both sides: 16 coalitions).
+    for removal in [
+        proto::Removal::Marginal,
+        proto::Removal::Fixed,
+        proto::Removal::Independent,
+        proto::Removal::ConditionalGaussian,
+        proto::Removal::ConditionalNeighbors,
+    ] {
+        for target in [
+            proto::Target::Output,
+            proto::Target::Probability,
+            proto::Target::Loss,
+        ] {
+            let mut reference = explain_request("linear", removal, target);
+            reference.estimator = proto::Estimator::Exact as i32;
+            let reference = attributions.explain(reference).await.unwrap().into_inner();
+            for (model_id, tolerance) in [("onnx", 1e-12), ("onnx-float", 1e-5)] {
+                let got = attributions
+                    .explain(explain_request(model_id, removal, target))
+                    .await
+                    .unwrap()
+                    .into_inner();
+                for (a, b) in got.attributions.iter().zip(&reference.attributions) {
+                    assert!(
+                        (a.value - b.value).abs() < tolerance,
+                        "{model_id} {removal:?} {target:?} {}: {} vs {}",
+                        a.name,
+                        a.value,
+                        b.value
+                    );
+                }
+            }
+        }
+    }
+    server.stop().await;
+
+    // The graph comes back after a restart, checksum and answers unchanged.
+    let server = support::start(dir.path()).await;
+    let again = server
+        .registry_client()
+        .get_model(proto::GetModelRequest {
+            model_id: "onnx".into(),
+            version: 0,
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(again.checksum, onnx.checksum);
+    let repeated = server
+        .attributions_client()
+        .explain(explain_request(
+            "onnx",
+            proto::Removal::Marginal,
+            proto::Target::Output,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    let values = |e: &proto::Explanation| {
+        e.attributions
+            .iter()
+            .map(|a| a.value.to_bits())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(values(&repeated), values(&marginal));
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn unusable_graphs_are_refused_naming_the_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    let mut registry = server.registry_client();
+    let graph = linear_graph(&WEIGHTS, INTERCEPT, DOUBLE);
+    let mut wrong_column = request("bad", Model::Onnx(graph.clone()));
+    wrong_column.onnx_output_column = 1;
+    let mut wrong_output = request("bad", Model::Onnx(graph.clone()));
+    wrong_output.onnx_output = "probabilities".into();
+    let cases = [
+        ("onnx", request("bad", Model::Onnx(b"not a graph".to_vec()))),
+        // Three weights for four registered features.
+        (
+            "onnx",
+            request("bad", Model::Onnx(linear_graph(&WEIGHTS[..3], 0.0, DOUBLE))),
+        ),
+        ("onnx_output_column", wrong_column),
+        ("onnx_output", wrong_output),
+    ];
+    for (field, bad) in cases {
+        let status = registry.register_model(bad).await.unwrap_err();
+        assert_eq!(status.code(), tonic::Code::InvalidArgument, "{status:?}");
+        assert!(
+            status.message().starts_with(field),
+            "{field}: {}",
+            status.message()
+        );
+    }
+    // Nothing was kept, and the server still serves.
+    let listed = registry
+        .list_models(proto::ListModelsRequest {})
+        .await
+        .unwrap()
+        .into_inner();
+    assert!(listed.models.is_empty());
+    registry
+        .register_model(request("good", Model::Onnx(graph)))
+        .await
+        .unwrap();
+    server.stop().await;
+}
