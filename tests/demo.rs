@@ -22,9 +22,15 @@ fn the_demo_explains_every_applicant_over_grpc() {
             "{stdout}"
         );
     }
-    // The tree model's 8 players fit exact enumeration; the logistic model
-    // takes the closed form; referred applicants get reasons.
-    assert!(stdout.contains("ESTIMATOR_EXACT"), "{stdout}");
+    // The tree model's 8 players usually fit exact enumeration within the
+    // demo's budget, but that depends on the measured row cost, so either
+    // answer is accepted; the logistic model always takes the closed form;
+    // referred applicants get reasons.
+    let tree_lines = stdout
+        .lines()
+        .filter(|line| line.trim_start().starts_with("ESTIMATOR_") && line.contains("coalitions"))
+        .count();
+    assert_eq!(tree_lines, 4, "one estimator line per applicant: {stdout}");
     assert!(stdout.contains("ESTIMATOR_LINEAR_EXACT"), "{stdout}");
     assert!(stdout.contains("principal reasons"), "{stdout}");
     assert!(stdout.contains("Caution"), "{stdout}");

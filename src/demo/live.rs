@@ -81,6 +81,8 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
                 model_id: TREES_ID.into(),
                 instance: scenario.applicants.row(row).to_vec(),
                 target: proto::Target::Probability as i32,
+                // Room for exact enumeration even in a debug build.
+                budget_ms: DEMO_BUDGET_MS,
                 seed,
                 request_id: format!("demo-applicant-{}", row + 1),
                 ..Default::default()
@@ -206,6 +208,9 @@ fn format_value(x: f64) -> String {
         format!("{x:.2}")
     }
 }
+
+/// Budget of each demo explanation, in milliseconds.
+const DEMO_BUDGET_MS: u32 = 1000;
 
 pub fn matrix(rows: ArrayView2<'_, f64>) -> proto::Matrix {
     proto::Matrix {
