@@ -250,12 +250,36 @@ fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
         }
         let listener = tokio::net::TcpListener::bind(config.address).await?;
         tracing::info!(address = %listener.local_addr()?, "serving");
-        let shutdown = async {
-            let _ = tokio::signal::ctrl_c().await;
-        };
-        service::run(listener, state, shutdown).await?;
+        service::run(listener, state, stop_requested()).await?;
+        tracing::info!("stopped");
         Ok(())
     })
+}
+
+/// Completes on Ctrl-C (SIGINT) or SIGTERM, which service managers and
+/// container runtimes send; in-flight calls then finish before `run`
+/// returns.
+async fn stop_requested() {
+    let interrupt = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{SignalKind, signal};
+        match signal(SignalKind::terminate()) {
+            Ok(mut terminate) => {
+                tokio::select! {
+                    _ = interrupt => {}
+                    _ = terminate.recv() => {}
+                }
+            }
+            Err(_) => {
+                let _ = interrupt.await;
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = interrupt.await;
+    }
 }
 
 /// Starts the service on loopback with a fresh registry, registers the demo

@@ -99,6 +99,19 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     assert!(stderr.contains("compute_thread"), "{stderr}");
 }
 
+#[test]
+fn the_shipped_settings_file_is_valid() {
+    let shipped = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/apportion.toml");
+    let output = apportion()
+        .args(["serve", "--print-config", "--config"])
+        .arg(&shipped)
+        .output()
+        .unwrap();
+    let printed: toml::Table = toml::from_str(&succeeded(output)).unwrap();
+    assert_eq!(printed["data_dir"].as_str(), Some("/var/lib/apportion"));
+    assert_eq!(printed["log_format"].as_str(), Some("json"));
+}
+
 /// A server started from a config file, killed when dropped.
 struct Server {
     child: Child,
@@ -112,7 +125,7 @@ impl Server {
         std::fs::write(
             &config,
             format!(
-                "address = \"{address}\"\nmetrics_address = \"{}\"\ndata_dir = \"registry\"\n",
+                "address = \"{address}\"\nmetrics_address = \"{}\"\ndata_dir = \"registry\"\nlog_filter = \"warn\"\n",
                 free_address()
             ),
         )
@@ -278,4 +291,56 @@ fn the_thin_client_registers_lists_and_explains() {
     assert!(stderr.contains("linear.weights"), "{stderr}");
     let listed = json_lines(&succeeded(server.client("models").output().unwrap()));
     assert_eq!(listed.len(), 2);
+}
+
+#[cfg(unix)]
+#[test]
+fn sigterm_stops_the_server_cleanly_and_the_registry_survives() {
+    // Service managers and container runtimes stop a service with SIGTERM
+    // (systemd.kill(5); `docker stop`).
+    let dir = tempfile::tempdir().unwrap();
+    let mut server = Server::start(dir.path());
+    let model = dir.path().join("model.json");
+    std::fs::write(
+        &model,
+        serde_json::json!({
+            "model_id": "kept",
+            "features": [{"name": "income"}],
+            "model": {"kind": "linear", "weights": [1.0], "intercept": 0.0},
+            "background": [[1.0], [2.0]],
+        })
+        .to_string(),
+    )
+    .unwrap();
+    succeeded(
+        server
+            .client("register")
+            .arg("--model")
+            .arg(&model)
+            .output()
+            .unwrap(),
+    );
+    let killed = Command::new("kill")
+        .args(["-TERM", &server.child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(killed.success());
+    let started = Instant::now();
+    let status = loop {
+        if let Some(status) = server.child.try_wait().unwrap() {
+            break status;
+        }
+        assert!(
+            started.elapsed() < Duration::from_secs(30),
+            "still running after SIGTERM"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    };
+    assert!(status.success(), "{status:?}");
+    drop(server);
+
+    let server = Server::start(dir.path());
+    let listed = json_lines(&succeeded(server.client("models").output().unwrap()));
+    assert_eq!(listed.len(), 1);
+    assert_eq!(listed[0]["model_id"], "kept");
 }

@@ -193,3 +193,68 @@ fn an_exhausted_budget_returns_what_it_has() {
     assert!(!explained.estimate.converged);
     assert!(explained.estimate.values.iter().all(|v| v.is_finite()));
 }
+
+#[test]
+fn only_closed_form_requests_over_small_backgrounds_count_as_cheap() {
+    // The planner's own rule (engine::plan::model_specific): a request is
+    // cheap exactly when the planner answers it with the linear closed form
+    // and the background mean costs at most 10⁵ additions.
+    let players = Players::singletons(4);
+    let linear = linear(4, Link::Logistic);
+    let ensemble = trees();
+    let small = background(30, 4, 2);
+    let large = background(25_001, 4, 3);
+    let subject = |model: &'static str| -> Subject<'_> {
+        let (model, background): (&dyn apportion::model::Model, _) = match model {
+            "linear" => (&linear, small.view()),
+            "linear-large" => (&linear, large.view()),
+            _ => (&ensemble, small.view()),
+        };
+        Subject {
+            model,
+            players: &players,
+            background,
+            row_cost_ns: 50.0,
+        }
+    };
+    let instance = vec![0.7, -0.2, 1.1, 0.4];
+    let with = |change: &dyn Fn(&mut Request)| {
+        let mut request = Request::new(instance.clone());
+        change(&mut request);
+        request
+    };
+    let cases = [
+        ("linear", with(&|_| {}), true),
+        (
+            "linear",
+            with(&|r| r.removal = RemovalChoice::Fixed(None)),
+            true,
+        ),
+        ("linear", with(&|r| r.summary = Summary::LeaveOneOut), true),
+        ("linear", with(&|r| r.target = Target::Probability), false),
+        (
+            "linear",
+            with(&|r| r.estimator = Some(EstimatorKind::Exact)),
+            false,
+        ),
+        (
+            "linear",
+            with(&|r| r.removal = RemovalChoice::ConditionalGaussian { draws: 8 }),
+            false,
+        ),
+        ("linear-large", with(&|_| {}), false),
+        ("trees", with(&|_| {}), false),
+    ];
+    for (model, request, cheap) in cases {
+        let subject = subject(model);
+        assert_eq!(
+            apportion::engine::explain::is_cheap(&subject, &request),
+            cheap,
+            "{model} {request:?}"
+        );
+        if cheap {
+            let answer = explain(&subject, &request, Instant::now()).unwrap();
+            assert_eq!(answer.estimator, EstimatorKind::LinearExact);
+        }
+    }
+}

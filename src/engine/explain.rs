@@ -111,6 +111,29 @@ pub struct Explanation {
     pub elapsed: Duration,
 }
 
+/// Most background values a closed-form explanation may average and still
+/// count as cheap: about 10⁵ additions, tens of microseconds.
+const CHEAP_BACKGROUND_VALUES: usize = 100_000;
+
+/// Whether `request` will take the linear closed form over a small
+/// background: microseconds of work, so a server may compute it where the
+/// call arrives instead of handing it to a compute thread.
+pub fn is_cheap(subject: &Subject, request: &Request) -> bool {
+    let Structure::Linear(_) = subject.model.structure() else {
+        return false;
+    };
+    let closed_form = plan::model_specific(
+        ModelShape::Linear,
+        request.removal.kind(),
+        request.target == Target::Output,
+        request.summary,
+    )
+    .is_some_and(|(estimator, _)| estimator == EstimatorKind::LinearExact);
+    closed_form
+        && matches!(request.estimator, None | Some(EstimatorKind::LinearExact))
+        && subject.background.len() <= CHEAP_BACKGROUND_VALUES
+}
+
 /// Explains `request.instance` for `subject`. `started` is when the budget
 /// began to run (the service passes the request's arrival).
 pub fn explain(subject: &Subject, request: &Request, started: Instant) -> Result<Explanation> {

@@ -64,24 +64,7 @@ impl PlanInput {
     }
 
     fn model_specific(&self) -> Option<(EstimatorKind, &'static str)> {
-        let removal_ok = matches!(self.removal, RemovalKind::Marginal | RemovalKind::Fixed);
-        if !removal_ok || !self.output_target {
-            return None;
-        }
-        match (self.shape, self.summary) {
-            (ModelShape::Trees, Summary::Shapley | Summary::Banzhaf) => Some((
-                EstimatorKind::TreeExact,
-                "tree ensemble under marginal or fixed removal of the raw output: the exact tree algorithm needs no coalition enumeration",
-            )),
-            (
-                ModelShape::Linear,
-                Summary::Shapley | Summary::Banzhaf | Summary::LeaveOneOut | Summary::IncludeOne,
-            ) => Some((
-                EstimatorKind::LinearExact,
-                "linear model under marginal or fixed removal of the raw output: the game is additive, so the closed form w·(x − reference) is exact",
-            )),
-            _ => None,
-        }
+        model_specific(self.shape, self.removal, self.output_target, self.summary)
     }
 
     /// Why `estimator` cannot compute this request, if it cannot.
@@ -143,6 +126,34 @@ impl PlanInput {
             EstimatorKind::MaximumSampleReuse => (self.summary != Summary::Banzhaf)
                 .then(|| format!("MSR estimates BANZHAF only, not {summary}")),
         }
+    }
+}
+
+/// The model-specific exact algorithm for these choices, if there is one,
+/// and why it applies.
+pub fn model_specific(
+    shape: ModelShape,
+    removal: RemovalKind,
+    output_target: bool,
+    summary: Summary,
+) -> Option<(EstimatorKind, &'static str)> {
+    let removal_ok = matches!(removal, RemovalKind::Marginal | RemovalKind::Fixed);
+    if !removal_ok || !output_target {
+        return None;
+    }
+    match (shape, summary) {
+        (ModelShape::Trees, Summary::Shapley | Summary::Banzhaf) => Some((
+            EstimatorKind::TreeExact,
+            "tree ensemble under marginal or fixed removal of the raw output: the exact tree algorithm needs no coalition enumeration",
+        )),
+        (
+            ModelShape::Linear,
+            Summary::Shapley | Summary::Banzhaf | Summary::LeaveOneOut | Summary::IncludeOne,
+        ) => Some((
+            EstimatorKind::LinearExact,
+            "linear model under marginal or fixed removal of the raw output: the game is additive, so the closed form w·(x − reference) is exact",
+        )),
+        _ => None,
     }
 }
 

@@ -20,7 +20,7 @@ use super::proto::diagnostics_server::{Diagnostics, DiagnosticsServer};
 use super::proto::registry_server::{Registry as RegistryApi, RegistryServer};
 use super::status::{ServiceError, code_label};
 use crate::engine::explain::{self, Subject};
-use crate::registry::{LoadProblem, ModelSpec, Registry};
+use crate::registry::{Entry, LoadProblem, ModelSpec, Registry};
 use crate::telemetry::{self, LogFormat};
 
 /// Server settings with their defaults. A plain struct: the binary fills it
@@ -347,19 +347,27 @@ impl AttributionsService {
                 Some(timeout) => timeout.saturating_sub(shared.deadline_margin),
                 None => budget,
             };
-        let job_entry = entry.clone();
-        let answer = shared
-            .pool
-            .run(admit_by, move || {
-                let subject = Subject {
-                    model: job_entry.model().as_ref(),
-                    players: job_entry.players(),
-                    background: job_entry.background(),
-                    row_cost_ns: job_entry.info().row_cost_ns,
-                };
-                explain::explain(&subject, &engine_request, arrival)
-            })
-            .await??;
+        fn subject(entry: &Entry) -> Subject<'_> {
+            Subject {
+                model: entry.model().as_ref(),
+                players: entry.players(),
+                background: entry.background(),
+                row_cost_ns: entry.info().row_cost_ns,
+            }
+        }
+        // The closed form takes microseconds: handing it to a compute thread
+        // would cost more than computing it here.
+        let answer = if explain::is_cheap(&subject(&entry), &engine_request) {
+            explain::explain(&subject(&entry), &engine_request, arrival)?
+        } else {
+            let job_entry = entry.clone();
+            shared
+                .pool
+                .run(admit_by, move || {
+                    explain::explain(&subject(&job_entry), &engine_request, arrival)
+                })
+                .await??
+        };
         metrics::histogram!(telemetry::EXPLAIN_SECONDS).record(answer.elapsed.as_secs_f64());
         metrics::counter!(telemetry::COALITIONS_EVALUATED).increment(answer.coalitions_evaluated);
         metrics::counter!(telemetry::MODEL_ROWS_EVALUATED).increment(answer.model_rows_evaluated);
