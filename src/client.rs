@@ -135,7 +135,7 @@ pub struct TreeEntry {
 /// of `background` when that is given. The server validates the rest.
 pub fn registration(
     model_file: &Path,
-    background: Option<&PathBuf>,
+    background: Option<&Path>,
     model_id: Option<&str>,
 ) -> Result<proto::RegisterModelRequest, Failure> {
     let text = std::fs::read_to_string(model_file)

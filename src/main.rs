@@ -47,7 +47,7 @@ enum Command {
         /// The server's gRPC address.
         #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
         address: String,
-        /// The model file (see the README's "Registering a model").
+        /// The model file: one JSON object (format in the README, beside the thin client).
         #[arg(long)]
         model: PathBuf,
         /// Background rows as CSV or JSON lines, in place of the file's own.
@@ -163,7 +163,7 @@ fn main() -> ExitCode {
             model,
             background,
             model_id,
-        } => client::registration(&model, background.as_ref(), model_id.as_deref())
+        } => client::registration(&model, background.as_deref(), model_id.as_deref())
             .map_err(|e| e.to_string().into())
             .and_then(|request| run_client(client::register(&address, request))),
         Command::Explain(args) => match explain_template(&args) {

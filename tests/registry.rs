@@ -434,6 +434,17 @@ fn invalid_registrations_name_the_field_and_leave_nothing_behind() {
                 }
             }),
         ),
+        // Finite weights whose outputs overflow on the background: nothing
+        // could be attributed.
+        (
+            "model",
+            with(&|s| {
+                s.model = ModelBody::Linear {
+                    weights: vec![1e308; 3],
+                    intercept: 0.0,
+                }
+            }),
+        ),
         ("trees.left", with_tree(&|t| t.right[2] = 5)),
         ("trees.left", with_tree(&|t| t.left[2] = 0)),
         ("trees.feature", with_tree(&|t| t.feature[0] = 3)),

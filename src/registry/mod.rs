@@ -699,9 +699,6 @@ fn build_onnx(_: &[u8], _: &str, _: usize, _: Link, _: usize) -> Result<Arc<dyn 
     .into())
 }
 
-/// Nanoseconds per row of a batched prediction over `rows`, timed over
-/// repeated passes until at least [`ROW_COST_MIN_TIME`] has elapsed. A
-/// measurement for the planner, not a guarantee.
 /// The model's outputs on its background must be numbers: a NaN or
 /// infinite output would make every attribution meaningless.
 fn check_outputs(model: &dyn Model, background: ArrayView2<'_, f64>) -> Result<()> {
@@ -720,6 +717,9 @@ fn check_outputs(model: &dyn Model, background: ArrayView2<'_, f64>) -> Result<(
     }
 }
 
+/// Nanoseconds per row of a batched prediction over `rows`, timed over
+/// repeated passes until at least [`ROW_COST_MIN_TIME`] has elapsed. A
+/// measurement for the planner, not a guarantee.
 fn measure_row_cost(model: &dyn Model, rows: ArrayView2<'_, f64>) -> f64 {
     let mut out = vec![0.0; rows.nrows()];
     let start = Instant::now();
