@@ -2,8 +2,10 @@
 //! operator definitions (MatMul, Add: onnx.ai operator documentation) must
 //! give the same attributions as the same weights registered as a linear
 //! model, and the closed form; it must survive a restart; and graphs that
-//! cannot be used are refused naming the field. The cross-check against
-//! onnxruntime on exported scikit-learn models is in `.ci/grpcio-check`.
+//! cannot be used are refused naming the field. scikit-learn models
+//! exported with skl2onnx must predict as onnxruntime does (committed
+//! fixtures); `.ci/grpcio-check` repeats that live and adds Shapley values
+//! computed from their definition with onnxruntime as the evaluator.
 
 #![cfg(feature = "onnx")]
 
@@ -322,4 +324,58 @@ async fn unusable_graphs_are_refused_naming_the_field() {
         .await
         .unwrap();
     server.stop().await;
+}
+
+/// scikit-learn models on its bundled data sets, exported with skl2onnx,
+/// with onnxruntime's outputs on 40 rows (`tests/fixtures/onnx`, made by
+/// `make_fixtures.py` there): tract's outputs must match to 1e-6 relative.
+#[test]
+fn exported_scikit_learn_models_predict_as_onnxruntime_does() {
+    use apportion::registry::{Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, Registry};
+
+    let fixtures = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/onnx");
+    let dir = tempfile::tempdir().unwrap();
+    let (registry, _) = Registry::open(dir.path()).unwrap();
+    for name in ["breast_cancer_forest", "diabetes_network"] {
+        let reference: serde_json::Value = serde_json::from_str(
+            &std::fs::read_to_string(fixtures.join(format!("{name}.json"))).unwrap(),
+        )
+        .unwrap();
+        let features = reference["features"].as_u64().unwrap() as usize;
+        let rows: Vec<Vec<f64>> = serde_json::from_value(reference["rows"].clone()).unwrap();
+        let expected: Vec<f64> = serde_json::from_value(reference["onnxruntime"].clone()).unwrap();
+        let spec = ModelSpec {
+            model_id: name.replace('_', "-"),
+            features: (0..features)
+                .map(|j| FeatureSpec {
+                    name: format!("x{j}"),
+                    group: String::new(),
+                    reason_code: String::new(),
+                    reason_text: String::new(),
+                })
+                .collect(),
+            model: ModelBody::Onnx {
+                graph: std::fs::read(fixtures.join(format!("{name}.onnx"))).unwrap(),
+                output: reference["output"].as_str().unwrap().to_string(),
+                column: reference["column"].as_u64().unwrap() as usize,
+            },
+            link: LinkSpec::Identity,
+            background: Background {
+                rows: rows.len(),
+                cols: features,
+                values: rows.iter().flatten().copied().collect(),
+            },
+            description: String::new(),
+        };
+        let info = registry.register(spec).unwrap();
+        let entry = registry.get(&info.model_id, info.version).unwrap();
+        let mut got = vec![0.0; rows.len()];
+        entry.model().predict(entry.background(), &mut got);
+        for (row, (a, b)) in got.iter().zip(&expected).enumerate() {
+            assert!(
+                (a - b).abs() <= 1e-6 * b.abs().max(f64::MIN_POSITIVE),
+                "{name} row {row}: tract {a} vs onnxruntime {b}"
+            );
+        }
+    }
 }
