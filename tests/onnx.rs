@@ -328,7 +328,7 @@ async fn unusable_graphs_are_refused_naming_the_field() {
 
 /// scikit-learn models on its bundled data sets, exported with skl2onnx,
 /// with onnxruntime's outputs on 40 rows (`tests/fixtures/onnx`, made by
-/// `make_fixtures.py` there): tract's outputs must match to 1e-6 relative.
+/// `tests/fixtures/make_fixtures.py`): tract's outputs must match to 1e-6 relative.
 #[test]
 fn exported_scikit_learn_models_predict_as_onnxruntime_does() {
     use apportion::registry::{Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, Registry};
