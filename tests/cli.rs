@@ -237,9 +237,9 @@ fn the_thin_client_registers_lists_and_explains() {
     assert_eq!(ids, ["history", "screening"]);
 
     // Shapley values of a linear model under marginal removal, on the raw
-    // output: w_j (x_j − mean_j) (Štrumbelj & Kononenko, "Explaining
-    // prediction models and individual predictions with feature
-    // contributions", Knowledge and Information Systems 2014).
+    // output: w_j (x_j − mean_j) ("Explaining prediction models and
+    // individual predictions with feature contributions", Knowledge and
+    // Information Systems, 2014).
     let instances = dir.path().join("instances.jsonl");
     std::fs::write(&instances, "[4.0, 1.0, 0.0]\n[0.0, 3.0, 2.0]\n").unwrap();
     let answers = json_lines(&succeeded(

@@ -135,7 +135,7 @@ fn mismatched_instances_are_refused_with_the_field() {
 /// Global importance against `sklearn.inspection.permutation_importance`
 /// (scikit-learn, its bundled diabetes set, a LinearRegression; fixture made
 /// by `tests/fixtures/make_fixtures.py`). Permutation importance estimates
-/// Breiman's quantity ("Random forests", Machine Learning 45(1), 2001):
+/// the quantity of "Random forests" (Machine Learning 45(1), 2001):
 /// mean over rows i and replacement rows k of the loss with x_ij replaced
 /// by x_kj, less the loss of the model. DATASET_LOSS + LEAVE_ONE_OUT +
 /// MARGINAL over the same rows applies the loss to the *averaged*

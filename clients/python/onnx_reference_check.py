@@ -9,8 +9,8 @@ Two ONNX graphs are registered with a running apportion server:
 For each, the server's predictions (value_full under fixed removal at the
 instance itself) must equal onnxruntime's, and the server's exact Shapley
 values under marginal removal must equal the Shapley values computed here
-from their definition (Shapley, "A value for n-person games", Contributions
-to the Theory of Games II, 1953), with onnxruntime evaluating every
+from their definition ("A value for n-person games", Contributions to the
+Theory of Games II, 1953), with onnxruntime evaluating every
 coalition's rows. The random forest's probabilities are also checked
 against scikit-learn's own predict_proba. Tolerances allow for float32
 arithmetic (the graphs take float input).
