@@ -5,13 +5,15 @@
 //! the first line.
 
 use std::alloc::{GlobalAlloc, Layout, System};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
 
 use apportion::engine::estimate::{self, EstimatorKind, Stopping};
 use apportion::engine::removal::{Fixed, Marginal};
 use apportion::engine::{
-    CachedGame, Coalition, ModelGame, Players, Removal, Request, Subject, Summary, Target, explain,
+    CachedGame, Coalition, ModelGame, Players, PreparedModel, Removal, Request, Summary, Target,
+    prepare,
 };
 use apportion::model::{Link, Model, Tree, TreeEnsemble};
 use ndarray::{Array2, ArrayView2};
@@ -118,9 +120,9 @@ fn random_rows(seed: u64, rows: usize, cols: usize) -> Array2<f64> {
 
 /// The same ensemble seen only through predictions, so the engine cannot
 /// use the tree algorithm.
-struct Opaque<'a>(&'a TreeEnsemble);
+struct Opaque(TreeEnsemble);
 
-impl Model for Opaque<'_> {
+impl Model for Opaque {
     fn inputs(&self) -> usize {
         self.0.inputs()
     }
@@ -133,6 +135,24 @@ impl Model for Opaque<'_> {
     fn kind(&self) -> &'static str {
         "opaque"
     }
+}
+
+/// `model` prepared over `background`, with a stated row cost of 100 ns.
+fn prepared(
+    model: impl Model + 'static,
+    players: &Players,
+    background: &Array2<f64>,
+) -> Arc<PreparedModel> {
+    let prepared =
+        PreparedModel::try_new(Arc::new(model), players.clone(), background.clone(), 100.0);
+    Arc::new(prepared.expect("prepared model"))
+}
+
+/// Both stages of the front door, with a minute's deadline.
+fn explain(model: &Arc<PreparedModel>, request: &Request) -> apportion::engine::Explanation {
+    let job = prepare(model, request.clone()).expect("valid request");
+    job.run(Instant::now() + Duration::from_secs(60))
+        .expect("explanation")
 }
 
 /// Best of `repeats` timings of `work`.
@@ -195,7 +215,7 @@ fn main() {
         .expect("tree algorithm")
     });
     let marginal = Marginal::try_new(background.view()).expect("background");
-    let opaque = Opaque(&ensemble);
+    let opaque = Opaque(ensemble.clone());
     let (brute, brute_time) = best_time(1, || {
         let game = ModelGame::try_new(&opaque, &marginal, &players, &instance, &Target::Output)
             .expect("game");
@@ -229,18 +249,11 @@ fn main() {
 
     // 2. Engine overhead for a black-box model: explanation time over the
     // time the bare batched model call takes for the same rows.
-    let subject = Subject {
-        model: &opaque,
-        players: &players,
-        background: background.view(),
-        row_cost_ns: 100.0,
-    };
+    let subject = prepared(Opaque(ensemble.clone()), &players, &background);
     let mut request = Request::new(instance.clone());
     request.estimator = Some(EstimatorKind::Exact);
     request.budget = Duration::from_secs(60);
-    let (explained, explain_time) = best_time(repeats, || {
-        explain(&subject, &request, Instant::now()).expect("explanation")
-    });
+    let (explained, explain_time) = best_time(repeats, || explain(&subject, &request));
     // The baseline predicts the very rows the explanation filled (tree
     // traversal cost depends on the data), in the same 4096-row batches.
     let rows = explained.model_rows_evaluated as usize;
@@ -294,7 +307,7 @@ fn main() {
     // p = 20, fixed removal (exact values from the tree algorithm).
     let p = 20;
     let ensemble = random_ensemble(5, 50, 6, p);
-    let opaque = Opaque(&ensemble);
+    let opaque = Opaque(ensemble.clone());
     let players = Players::singletons(p);
     let background = random_rows(6, 100, p);
     let seeds: u64 = if quick { 5 } else { 20 };
@@ -358,23 +371,16 @@ fn main() {
     println!("|---|---|");
     for p in [20usize, 40, 80] {
         let ensemble = random_ensemble(8, 50, 6, p);
-        let opaque = Opaque(&ensemble);
         let players = Players::singletons(p);
         let background = random_rows(9, 100, p);
         let instance = random_rows(10, 1, p).row(0).to_vec();
-        let subject = Subject {
-            model: &opaque,
-            players: &players,
-            background: background.view(),
-            row_cost_ns: 100.0,
-        };
+        let subject = prepared(Opaque(ensemble), &players, &background);
         let mut request = Request::new(instance);
         request.estimator = Some(EstimatorKind::LeverageRegression);
         request.max_evaluations = 2048;
         request.tolerance = 1e-12;
         request.budget = Duration::from_secs(60);
-        let (explained, peak) =
-            peak_bytes(|| explain(&subject, &request, Instant::now()).expect("explanation"));
+        let (explained, peak) = peak_bytes(|| explain(&subject, &request));
         println!(
             "| p = {p} ({} coalitions evaluated) | {:.2} MiB |",
             explained.coalitions_evaluated,

@@ -2,10 +2,15 @@
 //! brute-force enumeration where an exact shortcut is taken, refusals name
 //! their field, and sampled answers say when they stopped early.
 
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use apportion::engine::estimate::EstimatorKind;
-use apportion::engine::{Players, RemovalChoice, Request, Subject, Summary, Target, explain};
+use apportion::engine::job::INLINE_LIMIT;
+use apportion::engine::{
+    EngineError, Explanation, Model, Players, PreparedModel, RemovalChoice, Request, Summary,
+    Target, prepare,
+};
 use apportion::model::{LinearModel, Link, Tree, TreeEnsemble};
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
@@ -46,6 +51,19 @@ fn trees() -> TreeEnsemble {
     TreeEnsemble::try_new(vec![deep, stump], 0.1, Link::Identity, 4).unwrap()
 }
 
+/// `model` prepared over `background` with a row cost of 50 ns, so plans
+/// do not depend on this machine's speed.
+fn prepared(model: Arc<dyn Model>, background: &Array2<f64>) -> Arc<PreparedModel> {
+    let players = Players::singletons(model.inputs());
+    Arc::new(PreparedModel::try_new(model, players, background.clone(), 50.0).unwrap())
+}
+
+/// Both stages, with the request's budget as the deadline.
+fn explain(model: &Arc<PreparedModel>, request: Request) -> Result<Explanation, EngineError> {
+    let deadline = Instant::now() + request.budget;
+    prepare(model, request)?.run(deadline)
+}
+
 fn close(a: &[f64], b: &[f64], tolerance: f64) -> bool {
     a.iter().zip(b).all(|(x, y)| (x - y).abs() <= tolerance)
 }
@@ -57,34 +75,22 @@ fn close(a: &[f64], b: &[f64], tolerance: f64) -> bool {
 #[test]
 fn model_specific_shortcuts_agree_with_enumeration() {
     let bg = background(30, 4, 1);
-    let players = Players::singletons(4);
-    let linear = linear(4, Link::Identity);
-    let ensemble = trees();
+    let linear: Arc<dyn Model> = Arc::new(linear(4, Link::Identity));
+    let ensemble: Arc<dyn Model> = Arc::new(trees());
     for (model, shortcut) in [
-        (
-            &linear as &dyn apportion::model::Model,
-            EstimatorKind::LinearExact,
-        ),
-        (
-            &ensemble as &dyn apportion::model::Model,
-            EstimatorKind::TreeExact,
-        ),
+        (linear, EstimatorKind::LinearExact),
+        (ensemble, EstimatorKind::TreeExact),
     ] {
-        let subject = Subject {
-            model,
-            players: &players,
-            background: bg.view(),
-            row_cost_ns: 50.0,
-        };
+        let model = prepared(model, &bg);
         for summary in [Summary::Shapley, Summary::Banzhaf] {
             for removal in [RemovalChoice::Marginal, RemovalChoice::Fixed(None)] {
                 let mut request = Request::new(vec![0.7, -0.2, 1.1, 0.4]);
                 request.summary = summary;
                 request.removal = removal;
-                let fast = explain(&subject, &request, Instant::now()).unwrap();
+                let fast = explain(&model, request.clone()).unwrap();
                 assert_eq!(fast.estimator, shortcut);
                 request.estimator = Some(EstimatorKind::Exact);
-                let slow = explain(&subject, &request, Instant::now()).unwrap();
+                let slow = explain(&model, request).unwrap();
                 assert!(
                     close(&fast.estimate.values, &slow.estimate.values, 1e-12),
                     "{shortcut:?} {summary:?}"
@@ -98,20 +104,8 @@ fn model_specific_shortcuts_agree_with_enumeration() {
 
 #[test]
 fn refusals_name_the_field() {
-    let bg = background(10, 4, 2);
-    let players = Players::singletons(4);
-    let model = linear(4, Link::Identity);
-    let subject = Subject {
-        model: &model,
-        players: &players,
-        background: bg.view(),
-        row_cost_ns: 50.0,
-    };
-    let field = |request: Request| {
-        explain(&subject, &request, Instant::now())
-            .unwrap_err()
-            .field
-    };
+    let model = prepared(Arc::new(linear(4, Link::Identity)), &background(10, 4, 2));
+    let field = |request: Request| prepare(&model, request).unwrap_err().field;
 
     assert_eq!(field(Request::new(vec![1.0; 3])), "instance");
     assert_eq!(
@@ -134,6 +128,26 @@ fn refusals_name_the_field() {
     let mut request = Request::new(vec![1.0; 4]);
     request.removal = RemovalChoice::ConditionalGaussian { draws: 3 };
     assert_eq!(field(request), "draws");
+    // A draw count that would ask for terabytes of rows is refused up front.
+    let mut request = Request::new(vec![1.0; 4]);
+    request.removal = RemovalChoice::Independent {
+        draws: u32::MAX as usize,
+    };
+    assert_eq!(field(request), "draws");
+}
+
+/// A background with missing values has no mean: FIXED removal without
+/// values is then the registered model's limit, not the caller's mistake.
+#[test]
+fn a_background_without_a_mean_is_a_failed_precondition() {
+    let mut bg = background(10, 4, 5);
+    bg[(3, 1)] = f64::NAN;
+    let model = prepared(Arc::new(trees()), &bg);
+    let mut request = Request::new(vec![1.0; 4]);
+    request.removal = RemovalChoice::Fixed(None);
+    let error = prepare(&model, request).unwrap_err();
+    assert_eq!(error.kind, apportion::engine::ErrorKind::FailedPrecondition);
+    assert_eq!(error.field, "background");
 }
 
 /// A game too large for enumeration within the cap is sampled; stopping at
@@ -142,21 +156,16 @@ fn refusals_name_the_field() {
 #[test]
 fn capped_samplers_report_that_they_did_not_converge() {
     let features = 24;
-    let bg = background(20, features, 3);
-    let players = Players::singletons(features);
-    let model = linear(features, Link::Logistic);
-    let subject = Subject {
-        model: &model,
-        players: &players,
-        background: bg.view(),
-        row_cost_ns: 50.0,
-    };
+    let model = prepared(
+        Arc::new(linear(features, Link::Logistic)),
+        &background(20, features, 3),
+    );
     let mut request = Request::new(vec![0.5; features]);
     request.target = Target::Probability;
     request.max_evaluations = 400;
     request.tolerance = 1e-9;
     request.seed = 11;
-    let first = explain(&subject, &request, Instant::now()).unwrap();
+    let first = explain(&model, request.clone()).unwrap();
     assert!(!first.estimator.is_exact(), "{:?}", first.estimator);
     assert!(!first.estimate.converged);
     assert!(first.coalitions_evaluated <= 400);
@@ -168,7 +177,7 @@ fn capped_samplers_report_that_they_did_not_converge() {
             .all(|s| s.is_finite() && *s > 0.0)
     );
     // Seeded runs are reproducible bit for bit.
-    let second = explain(&subject, &request, Instant::now()).unwrap();
+    let second = explain(&model, request).unwrap();
     assert_eq!(first.estimate.values, second.estimate.values);
 }
 
@@ -176,47 +185,28 @@ fn capped_samplers_report_that_they_did_not_converge() {
 #[test]
 fn an_exhausted_budget_returns_what_it_has() {
     let features = 30;
-    let bg = background(20, features, 4);
-    let players = Players::singletons(features);
-    let model = linear(features, Link::Logistic);
-    let subject = Subject {
-        model: &model,
-        players: &players,
-        background: bg.view(),
-        row_cost_ns: 50.0,
-    };
+    let model = prepared(
+        Arc::new(linear(features, Link::Logistic)),
+        &background(20, features, 4),
+    );
     let mut request = Request::new(vec![0.5; features]);
     request.target = Target::Probability;
     request.budget = Duration::from_millis(1);
-    let started = Instant::now() - Duration::from_millis(5);
-    let explained = explain(&subject, &request, started).unwrap();
+    let spent = Instant::now() - Duration::from_millis(5);
+    let explained = prepare(&model, request).unwrap().run(spent).unwrap();
     assert!(!explained.estimate.converged);
     assert!(explained.estimate.values.iter().all(|v| v.is_finite()));
 }
 
 #[test]
-fn only_closed_form_requests_over_small_backgrounds_count_as_cheap() {
-    // The planner's own rule (engine::plan::model_specific): a request is
-    // cheap exactly when the planner answers it with the linear closed form
-    // and the background mean costs at most 10⁵ additions.
-    let players = Players::singletons(4);
-    let linear = linear(4, Link::Logistic);
-    let ensemble = trees();
-    let small = background(30, 4, 2);
-    let large = background(25_001, 4, 3);
-    let subject = |model: &'static str| -> Subject<'_> {
-        let (model, background): (&dyn apportion::model::Model, _) = match model {
-            "linear" => (&linear, small.view()),
-            "linear-large" => (&linear, large.view()),
-            _ => (&ensemble, small.view()),
-        };
-        Subject {
-            model,
-            players: &players,
-            background,
-            row_cost_ns: 50.0,
-        }
-    };
+fn only_jobs_predicted_within_the_inline_limit_run_inline() {
+    // The planner's prediction from the stated row cost of 50 ns (common
+    // practice, no source): the closed form reads the prepared background
+    // mean, about one model row, whatever the background size; everything
+    // that evaluates coalitions costs rows × coalitions × 50 ns.
+    let linear: Arc<dyn Model> = Arc::new(linear(4, Link::Logistic));
+    let small = prepared(linear.clone(), &background(30, 4, 2));
+    let large = prepared(linear, &background(25_001, 4, 3));
     let instance = vec![0.7, -0.2, 1.1, 0.4];
     let with = |change: &dyn Fn(&mut Request)| {
         let mut request = Request::new(instance.clone());
@@ -224,37 +214,33 @@ fn only_closed_form_requests_over_small_backgrounds_count_as_cheap() {
         request
     };
     let cases = [
-        ("linear", with(&|_| {}), true),
+        (&small, with(&|_| {}), true),
+        (&large, with(&|_| {}), true),
         (
-            "linear",
+            &small,
             with(&|r| r.removal = RemovalChoice::Fixed(None)),
             true,
         ),
-        ("linear", with(&|r| r.summary = Summary::LeaveOneOut), true),
-        ("linear", with(&|r| r.target = Target::Probability), false),
+        (&small, with(&|r| r.summary = Summary::LeaveOneOut), true),
+        // 16 coalitions × 30 rows × 50 ns = 24 µs.
+        (&small, with(&|r| r.target = Target::Probability), false),
         (
-            "linear",
+            &small,
             with(&|r| r.estimator = Some(EstimatorKind::Exact)),
             false,
         ),
         (
-            "linear",
-            with(&|r| r.removal = RemovalChoice::ConditionalGaussian { draws: 8 }),
+            &small,
+            with(&|r| r.removal = RemovalChoice::ConditionalGaussian { draws: 64 }),
             false,
         ),
-        ("linear-large", with(&|_| {}), false),
-        ("trees", with(&|_| {}), false),
     ];
-    for (model, request, cheap) in cases {
-        let subject = subject(model);
-        assert_eq!(
-            apportion::engine::explain::is_cheap(&subject, &request),
-            cheap,
-            "{model} {request:?}"
-        );
-        if cheap {
-            let answer = explain(&subject, &request, Instant::now()).unwrap();
-            assert_eq!(answer.estimator, EstimatorKind::LinearExact);
+    for (model, request, inline) in cases {
+        let job = prepare(model, request.clone()).unwrap();
+        assert_eq!(job.runs_inline(), inline, "{request:?}");
+        assert_eq!(job.predicted() <= INLINE_LIMIT, inline);
+        if inline {
+            assert_eq!(job.estimator(), EstimatorKind::LinearExact);
         }
     }
 }

@@ -233,7 +233,7 @@ fn the_linear_closed_form_equals_enumerated_shapley_and_banzhaf_values() {
     for players in [Players::singletons(5), grouped_players()] {
         for (removal, reference) in cases {
             let values = game_values(&model, removal, &players, &x);
-            let closed = linear::explain(&model, &players, &x, reference).unwrap();
+            let closed = linear::explain(model.form(), &players, &x, reference).unwrap();
             let shapley = naive_shapley(&values, players.len());
             let banzhaf = naive_banzhaf(&values, players.len());
             for i in 0..players.len() {

@@ -7,8 +7,7 @@ mod support;
 use std::time::{Duration, Instant};
 
 use apportion::engine::{
-    EstimatorKind, Kernel, RemovalChoice, Request as EngineRequest, Subject, Summary, Target,
-    explain,
+    EstimatorKind, Kernel, RemovalChoice, Request as EngineRequest, Summary, Target, prepare,
 };
 use apportion::service::Config;
 use apportion::service::proto::{self, register_model_request::Model};
@@ -435,6 +434,25 @@ async fn every_cell_of_the_grid_answers_and_the_registry_survives_a_restart() {
     request.dataset_labels = vec![1.0];
     assert_invalid(attributions.explain(request).await, "dataset_labels");
 
+    // Well-formed requests the registered model cannot serve are the
+    // model's limit, not the caller's mistake: FAILED_PRECONDITION (gRPC
+    // status code guide). An output that overflows to infinity for this
+    // instance names `model`.
+    let mut request = explain_request("screening", vec![-1e308, -1e308, 1e308, 1e308]);
+    request.removal = proto::Removal::Fixed as i32;
+    let status = attributions.explain(request).await.unwrap_err();
+    assert_eq!(
+        status.code(),
+        Code::FailedPrecondition,
+        "{}",
+        status.message()
+    );
+    assert!(
+        status.message().starts_with("model:"),
+        "{}",
+        status.message()
+    );
+
     // List, delete, restart.
     let listed = registry
         .list_models(proto::ListModelsRequest {})
@@ -588,13 +606,10 @@ async fn grpc_answers_equal_the_in_process_engine_bit_for_bit() {
             local.max_evaluations = case.max_evaluations;
         }
         local.seed = seed;
-        let subject = Subject {
-            model: entry.model().as_ref(),
-            players: entry.players(),
-            background: entry.background(),
-            row_cost_ns: entry.info().row_cost_ns,
-        };
-        let answer = explain(&subject, &local, Instant::now()).unwrap();
+        let answer = prepare(entry.prepared(), local)
+            .unwrap()
+            .run(Instant::now() + Duration::from_secs(10))
+            .unwrap();
         let bits = |values: &[f64]| values.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
         let remote_values: Vec<f64> = remote.attributions.iter().map(|a| a.value).collect();
         let remote_errors: Vec<f64> = remote.attributions.iter().map(|a| a.std_error).collect();

@@ -10,10 +10,10 @@ use ndarray::{Array2, ArrayView2, s};
 
 use super::coalition::Coalition;
 use super::error::{EngineError, Result};
+use super::model::{Link, Model};
 use super::players::Players;
 use super::removal::Removal;
 use super::target::{Target, averaging_scale, loss};
-use crate::model::{Link, Model};
 
 /// A set function over `players()` players.
 pub trait Game: Sync {

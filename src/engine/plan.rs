@@ -43,6 +43,9 @@ pub struct PlanInput {
     pub max_evaluations: u64,
     /// Measured time of one model row, in nanoseconds.
     pub row_cost_ns: f64,
+    /// Predicted time of the model-specific exact algorithm, where the
+    /// model has one, in nanoseconds.
+    pub exact_cost_ns: Option<f64>,
     pub enumeration_cap: usize,
 }
 
@@ -54,13 +57,42 @@ pub struct Plan {
     pub max_evaluations: u64,
     /// One sentence for the caller on why this estimator was chosen.
     pub reason: String,
+    /// Predicted computing time, from the measured costs.
+    pub predicted: Duration,
 }
 
 impl PlanInput {
+    /// Predicted time of one coalition value, in nanoseconds.
+    fn coalition_cost_ns(&self) -> f64 {
+        self.rows_per_coalition as f64 * self.row_cost_ns.max(1.0)
+    }
+
     /// Coalition evaluations the budget pays for at the measured row cost.
     fn affordable_evaluations(&self) -> u64 {
-        let per_coalition = self.rows_per_coalition as f64 * self.row_cost_ns.max(1.0);
-        (self.budget.as_nanos() as f64 / per_coalition).floor() as u64
+        (self.budget.as_nanos() as f64 / self.coalition_cost_ns()).floor() as u64
+    }
+
+    /// Predicted time of `estimator` evaluating at most `evaluations`
+    /// coalitions.
+    fn predicted(&self, estimator: EstimatorKind, evaluations: u64) -> Duration {
+        let nanoseconds = match estimator {
+            EstimatorKind::TreeExact | EstimatorKind::LinearExact => {
+                self.exact_cost_ns.unwrap_or(0.0)
+            }
+            _ => evaluations as f64 * self.coalition_cost_ns(),
+        };
+        Duration::from_secs_f64(nanoseconds.max(0.0) / 1e9)
+    }
+
+    /// Coalitions exact enumeration of the summary evaluates.
+    fn enumerated(&self) -> u64 {
+        let p = self.players as u64;
+        match self.summary {
+            Summary::LeaveOneOut | Summary::IncludeOne => p + 2,
+            Summary::Selection { .. } => p * (p + 1) / 2 + 2,
+            _ if p < 64 => 1 << p,
+            _ => u64::MAX,
+        }
     }
 
     fn model_specific(&self) -> Option<(EstimatorKind, &'static str)> {
@@ -169,14 +201,20 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
         if let Some(why) = input.incompatibility(requested) {
             return Err(EngineError::new("estimator", why));
         }
+        let max_evaluations = if requested.is_exact() {
+            input.max_evaluations
+        } else {
+            sampled_cap
+        };
+        let evaluations = match requested {
+            EstimatorKind::Exact => input.enumerated(),
+            _ => max_evaluations,
+        };
         return Ok(Plan {
             estimator: requested,
-            max_evaluations: if requested.is_exact() {
-                input.max_evaluations
-            } else {
-                sampled_cap
-            },
+            max_evaluations,
             reason: format!("{} as requested", requested.name()),
+            predicted: input.predicted(requested, evaluations),
         });
     }
 
@@ -185,6 +223,7 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
             estimator,
             max_evaluations: input.max_evaluations,
             reason: why.to_string(),
+            predicted: input.predicted(estimator, 0),
         });
     }
 
@@ -193,10 +232,7 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
         input.summary,
         Summary::LeaveOneOut | Summary::IncludeOne | Summary::Selection { .. }
     ) {
-        let needed = match input.summary {
-            Summary::Selection { .. } => (p * (p + 1) / 2 + 2) as u64,
-            _ => p as u64 + 2,
-        };
+        let needed = input.enumerated();
         return Ok(Plan {
             estimator: EstimatorKind::Exact,
             max_evaluations: input.max_evaluations,
@@ -204,20 +240,23 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
                 "{} needs at most {needed} coalition values, so it is computed exactly",
                 input.summary.name()
             ),
+            predicted: input.predicted(EstimatorKind::Exact, needed),
         });
     }
 
     let all = if p < 64 { 1u64 << p } else { u64::MAX };
     let cap = input.enumeration_cap.min(ENUMERATION_LIMIT);
     if p <= cap && all <= input.max_evaluations && all <= affordable {
-        let predicted_ms = all as f64 * input.rows_per_coalition as f64 * input.row_cost_ns / 1e6;
+        let predicted = input.predicted(EstimatorKind::Exact, all);
         return Ok(Plan {
             estimator: EstimatorKind::Exact,
             max_evaluations: all,
             reason: format!(
-                "all 2^{p} coalitions × {} rows ≈ {predicted_ms:.1} ms fit the budget, so the answer is exact",
-                input.rows_per_coalition
+                "all 2^{p} coalitions × {} rows ≈ {:.1} ms fit the budget, so the answer is exact",
+                input.rows_per_coalition,
+                predicted.as_secs_f64() * 1e3
             ),
+            predicted,
         });
     }
 
@@ -253,6 +292,7 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
         estimator,
         max_evaluations: sampled_cap,
         reason: format!("{why_not_exact}; sampling with {method}, up to {sampled_cap} coalitions"),
+        predicted: input.predicted(estimator, sampled_cap),
     })
 }
 
@@ -272,6 +312,7 @@ mod tests {
             budget: Duration::from_millis(100),
             max_evaluations: 1 << 20,
             row_cost_ns: 50.0,
+            exact_cost_ns: None,
             enumeration_cap: DEFAULT_ENUMERATION_CAP,
         }
     }

@@ -7,7 +7,7 @@
 
 use ndarray::Array2;
 
-use crate::model::Link;
+use super::model::Link;
 
 #[derive(Debug, Clone, PartialEq)]
 pub enum Target {

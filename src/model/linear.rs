@@ -2,8 +2,8 @@
 
 use ndarray::ArrayView2;
 
-use super::{Link, Model, Structure};
 use crate::engine::error::{EngineError, Result};
+use crate::engine::model::{LinearForm, Link, Model, Structure};
 
 #[derive(Debug, Clone, PartialEq)]
 pub struct LinearModel {
@@ -46,6 +46,14 @@ impl LinearModel {
     pub fn intercept(&self) -> f64 {
         self.intercept
     }
+
+    /// The weights and intercept, as the closed form reads them.
+    pub fn form(&self) -> LinearForm<'_> {
+        LinearForm {
+            weights: &self.weights,
+            intercept: self.intercept,
+        }
+    }
 }
 
 impl Model for LinearModel {
@@ -69,7 +77,7 @@ impl Model for LinearModel {
     }
 
     fn structure(&self) -> Structure<'_> {
-        Structure::Linear(self)
+        Structure::Linear(self.form())
     }
 
     fn kind(&self) -> &'static str {

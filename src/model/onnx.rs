@@ -7,8 +7,8 @@ use ndarray::ArrayView2;
 use tract_onnx::prelude::*;
 use tract_onnx::tract_hir::infer::Factoid;
 
-use super::{Link, Model};
 use crate::engine::error::{EngineError, Result};
+use crate::engine::model::{Link, Model};
 
 type Plan = TypedSimplePlan<TypedModel>;
 

@@ -42,7 +42,7 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use ndarray::{Array2, ArrayView2};
 use serde::{Deserialize, Serialize};
 
-use crate::engine::{EngineError, Players};
+use crate::engine::{EngineError, ErrorKind, Players, PreparedModel};
 use crate::model::{LinearModel, Link, Model, Tree, TreeEnsemble};
 use store::{Record, Store};
 
@@ -191,6 +191,12 @@ pub struct ModelInfo {
     /// Measured at registration: time of one model row in a batched
     /// prediction over the background, in nanoseconds.
     pub row_cost_ns: f64,
+    /// Time spent deriving the prepared model (at registration, and again
+    /// on each load), in milliseconds.
+    pub preparation_ms: f64,
+    /// Heap bytes of what preparation derived from the model and
+    /// background (statistics, factorizations, tree summaries).
+    pub prepared_bytes: u64,
     pub registered_unix_ms: u64,
     /// See [`spec_checksum`].
     pub checksum: String,
@@ -202,9 +208,7 @@ pub struct ModelInfo {
 pub struct Entry {
     info: ModelInfo,
     body: ModelBody,
-    model: Arc<dyn Model>,
-    players: Players,
-    background: Array2<f64>,
+    prepared: Arc<PreparedModel>,
     reason_codes: Vec<String>,
     reason_statements: Vec<String>,
 }
@@ -214,7 +218,7 @@ impl fmt::Debug for Entry {
         formatter
             .debug_struct("Entry")
             .field("info", &self.info)
-            .field("players", &self.players.names())
+            .field("players", &self.prepared.players().names())
             .finish_non_exhaustive()
     }
 }
@@ -224,17 +228,23 @@ impl Entry {
         &self.info
     }
 
+    /// The model with everything derived from it and its background, as
+    /// requests borrow it.
+    pub fn prepared(&self) -> &Arc<PreparedModel> {
+        &self.prepared
+    }
+
     pub fn model(&self) -> &Arc<dyn Model> {
-        &self.model
+        self.prepared.shared_model()
     }
 
     pub fn players(&self) -> &Players {
-        &self.players
+        self.prepared.players()
     }
 
     /// Background rows × features.
     pub fn background(&self) -> ArrayView2<'_, f64> {
-        self.background.view()
+        self.prepared.background()
     }
 
     /// Reason code per player (empty when none was registered).
@@ -251,15 +261,16 @@ impl Entry {
     /// The registration as submitted, rebuilt on demand so the background
     /// is held in memory once. Its [`spec_checksum`] is `info().checksum`.
     pub fn spec(&self) -> ModelSpec {
+        let background = self.background();
         ModelSpec {
             model_id: self.info.model_id.clone(),
             features: self.info.features.clone(),
             model: self.body.clone(),
             link: self.info.link.into(),
             background: Background {
-                rows: self.background.nrows(),
-                cols: self.background.ncols(),
-                values: self.background.iter().copied().collect(),
+                rows: background.nrows(),
+                cols: background.ncols(),
+                values: background.iter().copied().collect(),
             },
             description: self.info.description.clone(),
         }
@@ -317,6 +328,17 @@ pub enum RegistryError {
 }
 
 impl RegistryError {
+    /// Whose fault the error is.
+    pub fn kind(&self) -> ErrorKind {
+        match self {
+            RegistryError::Invalid(error) => error.kind,
+            RegistryError::TooLarge { .. } => ErrorKind::InvalidArgument,
+            RegistryError::NotFound { .. } => ErrorKind::NotFound,
+            // Storage trouble is the operator's to fix and may pass.
+            RegistryError::InUse { .. } | RegistryError::Io { .. } => ErrorKind::Unavailable,
+        }
+    }
+
     /// The request field at fault, if the error is about one.
     pub fn field(&self) -> Option<&str> {
         match self {
@@ -387,8 +409,8 @@ fn check_text(field: &str, text: &str, limit: usize) -> Result<()> {
     Ok(())
 }
 
-/// A spec checked and converted, not yet given a version.
-struct Prepared {
+/// A spec checked and converted, not yet prepared or given a version.
+struct Validated {
     info: ModelInfo,
     body: ModelBody,
     model: Arc<dyn Model>,
@@ -398,23 +420,29 @@ struct Prepared {
     reason_statements: Vec<String>,
 }
 
-impl Prepared {
-    fn into_entry(self) -> Entry {
-        Entry {
-            info: self.info,
+impl Validated {
+    /// Derives the prepared model, with the row cost measured at
+    /// registration.
+    fn into_entry(self, row_cost_ns: f64) -> Result<Entry> {
+        let prepared =
+            PreparedModel::try_new(self.model, self.players, self.background, row_cost_ns)?;
+        let mut info = self.info;
+        info.row_cost_ns = row_cost_ns;
+        info.preparation_ms = prepared.preparation().as_secs_f64() * 1e3;
+        info.prepared_bytes = prepared.derived_bytes() as u64;
+        Ok(Entry {
+            info,
             body: self.body,
-            model: self.model,
-            players: self.players,
-            background: self.background,
+            prepared: Arc::new(prepared),
             reason_codes: self.reason_codes,
             reason_statements: self.reason_statements,
-        }
+        })
     }
 }
 
 /// Validates every part of `spec` and builds the model, players and
 /// background. `checksum` is computed unless the caller already verified it.
-fn prepare(spec: ModelSpec, checksum: Option<String>) -> Result<Prepared> {
+fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Validated> {
     check_model_id(&spec.model_id)?;
     check_text("description", &spec.description, MAX_DESCRIPTION_BYTES)?;
     if spec.features.len() > MAX_FEATURES {
@@ -461,7 +489,7 @@ fn prepare(spec: ModelSpec, checksum: Option<String>) -> Result<Prepared> {
         .map_err(|error| {
             EngineError::new("background.values", format!("cannot be shaped: {error}"))
         })?;
-    Ok(Prepared {
+    Ok(Validated {
         info: ModelInfo {
             model_id,
             version: 0,
@@ -470,6 +498,8 @@ fn prepare(spec: ModelSpec, checksum: Option<String>) -> Result<Prepared> {
             model_kind: model.kind(),
             link,
             row_cost_ns: 0.0,
+            preparation_ms: 0.0,
+            prepared_bytes: 0,
             registered_unix_ms: 0,
             checksum,
             description,
@@ -772,11 +802,11 @@ impl Registry {
         let mut models: BTreeMap<String, Versions> = BTreeMap::new();
         for loaded in std::mem::take(&mut scan.records) {
             let record = loaded.record;
-            match prepare(record.spec, Some(record.checksum)) {
-                Ok(prepared) => {
-                    let mut entry = prepared.into_entry();
+            let entry = validate(record.spec, Some(record.checksum))
+                .and_then(|validated| validated.into_entry(record.row_cost_ns));
+            match entry {
+                Ok(mut entry) => {
                     entry.info.version = record.version;
-                    entry.info.row_cost_ns = record.row_cost_ns;
                     entry.info.registered_unix_ms = record.registered_unix_ms;
                     models
                         .entry(record.model_id)
@@ -817,11 +847,10 @@ impl Registry {
     /// Validates `spec`, measures its row cost, assigns the next version and
     /// persists it durably; only then is it served.
     pub fn register(&self, spec: ModelSpec) -> Result<ModelInfo> {
-        let prepared = prepare(spec, None)?;
-        check_outputs(prepared.model.as_ref(), prepared.background.view())?;
-        let row_cost_ns = measure_row_cost(prepared.model.as_ref(), prepared.background.view());
-        let mut entry = prepared.into_entry();
-        entry.info.row_cost_ns = row_cost_ns;
+        let validated = validate(spec, None)?;
+        check_outputs(validated.model.as_ref(), validated.background.view())?;
+        let row_cost_ns = measure_row_cost(validated.model.as_ref(), validated.background.view());
+        let mut entry = validated.into_entry(row_cost_ns)?;
         entry.info.registered_unix_ms = unix_ms_now();
         let model_id = entry.info.model_id.clone();
 

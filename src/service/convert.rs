@@ -9,7 +9,7 @@ use ndarray::Array2;
 
 use super::proto;
 use super::status::ServiceError;
-use crate::engine::explain::{self, RemovalChoice, Request};
+use crate::engine::job::{self, RemovalChoice, Request};
 use crate::engine::{EstimatorKind, Kernel, Players, Summary, Target};
 use crate::model::Link;
 use crate::reasons;
@@ -218,6 +218,8 @@ impl From<&ModelInfo> for proto::ModelInfo {
             checksum: info.checksum.clone(),
             description: info.description.clone(),
             players: player_names(&info.features),
+            preparation_ms: info.preparation_ms,
+            prepared_bytes: info.prepared_bytes,
         }
     }
 }
@@ -272,7 +274,7 @@ fn removal_from(request: &proto::ExplainRequest) -> Result<RemovalChoice> {
         ));
     }
     let draws = if request.draws == 0 {
-        explain::DEFAULT_DRAWS
+        job::DEFAULT_DRAWS
     } else {
         request.draws as usize
     };
@@ -284,7 +286,7 @@ fn removal_from(request: &proto::ExplainRequest) -> Result<RemovalChoice> {
         proto::Removal::ConditionalGaussian => RemovalChoice::ConditionalGaussian { draws },
         proto::Removal::ConditionalNeighbors => {
             let width = if request.neighbor_width == 0.0 {
-                explain::DEFAULT_WIDTH
+                job::DEFAULT_WIDTH
             } else {
                 request.neighbor_width
             };
@@ -446,7 +448,7 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
 pub fn explanation(
     entry: &Entry,
     request: &proto::ExplainRequest,
-    answer: &explain::Explanation,
+    answer: &job::Explanation,
     budget: Duration,
 ) -> proto::Explanation {
     let estimate = &answer.estimate;
@@ -584,7 +586,7 @@ mod tests {
         assert_eq!(
             engine.removal,
             RemovalChoice::ConditionalGaussian {
-                draws: explain::DEFAULT_DRAWS
+                draws: job::DEFAULT_DRAWS
             }
         );
         assert_eq!(engine.max_evaluations, DEFAULT_MAX_EVALUATIONS);

@@ -19,8 +19,8 @@ use super::proto::attributions_server::{Attributions, AttributionsServer};
 use super::proto::diagnostics_server::{Diagnostics, DiagnosticsServer};
 use super::proto::registry_server::{Registry as RegistryApi, RegistryServer};
 use super::status::{ServiceError, code_label};
-use crate::engine::explain::{self, Subject};
-use crate::registry::{Entry, LoadProblem, ModelSpec, Registry};
+use crate::engine;
+use crate::registry::{LoadProblem, ModelSpec, Registry};
 use crate::telemetry::{self, LogFormat};
 
 /// Server settings with their defaults. A plain struct: the binary fills it
@@ -338,8 +338,9 @@ impl AttributionsService {
             timeout,
             shared.deadline_margin,
         );
-        let engine_request = convert::explain_request(&message, budget)?;
+        let request = convert::explain_request(&message, budget)?;
         let entry = shared.registry.get(&message.model_id, message.version)?;
+        let job = engine::prepare(entry.prepared(), request)?;
         // Work that cannot start before the deadline (or, without one, within
         // the budget) is refused rather than queued.
         let admit_by = arrival
@@ -347,25 +348,15 @@ impl AttributionsService {
                 Some(timeout) => timeout.saturating_sub(shared.deadline_margin),
                 None => budget,
             };
-        fn subject(entry: &Entry) -> Subject<'_> {
-            Subject {
-                model: entry.model().as_ref(),
-                players: entry.players(),
-                background: entry.background(),
-                row_cost_ns: entry.info().row_cost_ns,
-            }
-        }
-        // The closed form takes microseconds: handing it to a compute thread
-        // would cost more than computing it here.
-        let answer = if explain::is_cheap(&subject(&entry), &engine_request) {
-            explain::explain(&subject(&entry), &engine_request, arrival)?
+        let deadline = arrival + budget;
+        // Work of a few microseconds costs less than the handoff to a
+        // compute thread.
+        let answer = if job.runs_inline() {
+            job.run(deadline)?
         } else {
-            let job_entry = entry.clone();
             shared
                 .pool
-                .run(admit_by, move || {
-                    explain::explain(&subject(&job_entry), &engine_request, arrival)
-                })
+                .run(admit_by, move || job.run(deadline))
                 .await??
         };
         metrics::histogram!(telemetry::EXPLAIN_SECONDS).record(answer.elapsed.as_secs_f64());

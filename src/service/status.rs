@@ -1,11 +1,14 @@
 //! The service layer's one error type and the one place where errors become
-//! gRPC statuses: bad input is INVALID_ARGUMENT naming the API field, an
-//! unknown model NOT_FOUND, a refused admission RESOURCE_EXHAUSTED, and
-//! INTERNAL is kept for bugs.
+//! gRPC statuses. Every error has a kind (engine, registry and service
+//! alike), and each kind maps to one code: bad input is INVALID_ARGUMENT
+//! naming the API field, an unknown model NOT_FOUND, a model or background
+//! that cannot serve a well-formed request FAILED_PRECONDITION, a refused
+//! admission RESOURCE_EXHAUSTED, storage trouble UNAVAILABLE, and INTERNAL
+//! is kept for bugs.
 
 use tonic::{Code, Status};
 
-use crate::engine::EngineError;
+use crate::engine::{EngineError, ErrorKind};
 use crate::registry::RegistryError;
 
 /// Why the service refused or failed a call.
@@ -55,31 +58,49 @@ fn api_field(field: &str) -> &str {
     }
 }
 
-fn invalid_argument(error: &EngineError) -> Status {
-    Status::invalid_argument(format!("{}: {}", api_field(&error.field), error.message))
+impl ServiceError {
+    /// Whose fault the error is, in the shared vocabulary of kinds.
+    pub fn kind(&self) -> ErrorKind {
+        match self {
+            ServiceError::Invalid(engine) => engine.kind,
+            ServiceError::Registry(registry) => registry.kind(),
+            ServiceError::Unimplemented(_) => ErrorKind::Unimplemented,
+            ServiceError::Exhausted(_) => ErrorKind::ResourceExhausted,
+            ServiceError::Internal(_)
+            | ServiceError::Transport(_)
+            | ServiceError::Reflection(_)
+            | ServiceError::Telemetry(_) => ErrorKind::Internal,
+        }
+    }
 }
 
-/// The status a caller receives for `error`.
-pub fn status_of(error: &ServiceError) -> Status {
-    match error {
-        ServiceError::Invalid(engine) => invalid_argument(engine),
-        ServiceError::Registry(registry) => match registry {
-            RegistryError::Invalid(engine) => invalid_argument(engine),
-            RegistryError::TooLarge { .. } => Status::invalid_argument(registry.to_string()),
-            RegistryError::NotFound { .. } => Status::not_found(registry.to_string()),
-            // Storage trouble is the operator's to fix and may pass; it is
-            // not a bug in the request or the code.
-            RegistryError::InUse { .. } | RegistryError::Io { .. } => {
-                Status::unavailable(registry.to_string())
-            }
-        },
-        ServiceError::Unimplemented(message) => Status::unimplemented(message.clone()),
-        ServiceError::Exhausted(message) => Status::resource_exhausted(message.clone()),
-        ServiceError::Internal(_)
-        | ServiceError::Transport(_)
-        | ServiceError::Reflection(_)
-        | ServiceError::Telemetry(_) => Status::internal(error.to_string()),
+/// The one mapping from error kinds to gRPC status codes.
+fn code_of(kind: ErrorKind) -> Code {
+    match kind {
+        ErrorKind::InvalidArgument => Code::InvalidArgument,
+        ErrorKind::NotFound => Code::NotFound,
+        ErrorKind::FailedPrecondition => Code::FailedPrecondition,
+        ErrorKind::ResourceExhausted => Code::ResourceExhausted,
+        ErrorKind::Unimplemented => Code::Unimplemented,
+        ErrorKind::Unavailable => Code::Unavailable,
+        ErrorKind::Internal => Code::Internal,
     }
+}
+
+/// The status a caller receives for `error`: the code its kind maps to,
+/// and a message that starts with the API's name of the field at fault.
+pub fn status_of(error: &ServiceError) -> Status {
+    let engine = match error {
+        ServiceError::Invalid(engine) | ServiceError::Registry(RegistryError::Invalid(engine)) => {
+            Some(engine)
+        }
+        _ => None,
+    };
+    let message = match engine {
+        Some(engine) => format!("{}: {}", api_field(&engine.field), engine.message),
+        None => error.to_string(),
+    };
+    Status::new(code_of(error.kind()), message)
 }
 
 impl From<ServiceError> for Status {

@@ -4,8 +4,8 @@
 
 use super::Estimate;
 use crate::engine::error::{EngineError, Result};
+use crate::engine::model::LinearForm;
 use crate::engine::players::Players;
-use crate::model::LinearModel;
 
 /// Closed form for a linear model under marginal (or fixed) removal with the
 /// OUTPUT target: `phi_player = Σ_{j ∈ player} w_j (x_j − reference_j)`,
@@ -15,12 +15,12 @@ use crate::model::LinearModel;
 /// NeurIPS 2017). `value_full = w·x + b` and `value_empty = w·reference + b`,
 /// both raw outputs whatever the model's link.
 pub fn explain(
-    model: &LinearModel,
+    model: LinearForm<'_>,
     players: &Players,
     instance: &[f64],
     reference: &[f64],
 ) -> Result<Estimate> {
-    let weights = model.weights();
+    let weights = model.weights;
     let features = weights.len();
     if players.features() != features {
         return Err(EngineError::new(
@@ -59,14 +59,14 @@ pub fn explain(
         })
         .collect();
     let output =
-        |row: &[f64]| model.intercept() + row.iter().zip(weights).map(|(x, w)| x * w).sum::<f64>();
+        |row: &[f64]| model.intercept + row.iter().zip(weights).map(|(x, w)| x * w).sum::<f64>();
     Ok(Estimate::exact(values, output(instance), output(reference)))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::Link;
+    use crate::model::{LinearModel, Link};
 
     #[test]
     fn grouped_weights_add_up_within_the_group() {
@@ -78,7 +78,7 @@ mod tests {
         let names: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
         let groups: Vec<String> = ["", "g", "g"].iter().map(|s| s.to_string()).collect();
         let players = Players::try_new(&names, &groups).unwrap();
-        let estimate = explain(&model, &players, &[1.0, 3.0, 4.0], &[0.0, 1.0, 2.0]).unwrap();
+        let estimate = explain(model.form(), &players, &[1.0, 3.0, 4.0], &[0.0, 1.0, 2.0]).unwrap();
         assert_eq!(estimate.values, vec![2.0, -1.0]);
         assert_eq!(estimate.value_full, 0.25 + 2.0 - 3.0 + 2.0);
         assert_eq!(estimate.value_empty, 0.25 - 1.0 + 1.0);
@@ -92,25 +92,25 @@ mod tests {
         let players = Players::singletons(2);
         let three = Players::singletons(3);
         assert_eq!(
-            explain(&model, &three, &[0.0, 0.0], &[0.0, 0.0])
+            explain(model.form(), &three, &[0.0, 0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "features"
         );
         assert_eq!(
-            explain(&model, &players, &[0.0], &[0.0, 0.0])
+            explain(model.form(), &players, &[0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "instance"
         );
         assert_eq!(
-            explain(&model, &players, &[f64::NAN, 0.0], &[0.0, 0.0])
+            explain(model.form(), &players, &[f64::NAN, 0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "instance"
         );
         assert_eq!(
-            explain(&model, &players, &[0.0, 0.0], &[0.0])
+            explain(model.form(), &players, &[0.0, 0.0], &[0.0])
                 .unwrap_err()
                 .field,
             "background"

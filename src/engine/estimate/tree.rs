@@ -13,9 +13,10 @@ use ndarray::{ArrayView1, ArrayView2, Axis, aview1};
 
 use super::Estimate;
 use crate::engine::error::{EngineError, Result};
+use crate::engine::model::Model;
 use crate::engine::players::Players;
 use crate::engine::summary::Summary;
-use crate::model::{Model, Tree, TreeEnsemble};
+use crate::engine::trees::{Tree, TreeEnsemble};
 
 /// Exact Shapley or Banzhaf values of the OUTPUT (raw margin) game of
 /// `ensemble` at `instance`, under marginal removal over `references`
@@ -296,7 +297,7 @@ impl Walk {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::Link;
+    use crate::engine::model::Link;
     use ndarray::array;
 
     /// Leaf 1 is reached only when feature 0 ≥ 0.5 and feature 1 ≥ 0.5, and

@@ -1,11 +1,11 @@
-//! Additive tree ensembles: output = base_score + Σ tree(x), with an
+//! Additive tree ensembles, the structure the exact tree algorithm reads: output = base_score + Σ tree(x), with an
 //! identity or logistic link. Nodes are stored as parallel arrays; node 0 is
 //! the root, `x[feature] < threshold` goes left, NaN goes the node's missing
 //! direction, and a leaf has `left = right = -1`.
 
 use ndarray::{ArrayView1, ArrayView2};
 
-use super::{Link, Model, Structure};
+use super::model::{Link, Model, Structure};
 use crate::engine::error::{EngineError, Result};
 
 /// One regression tree. Construct with [`Tree::try_new`], which checks that

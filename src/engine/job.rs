@@ -1,0 +1,602 @@
+//! The engine's front door, in two stages. [`prepare`] validates a
+//! [`Request`] against a [`PreparedModel`] once and plans it, giving a
+//! [`Job`]: ready-to-run work that knows its predicted cost. [`Job::run`]
+//! computes it before a deadline. Nothing is computed before validation is
+//! complete, and nothing is validated again while computing.
+
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use ndarray::{Array2, ArrayView2};
+
+use super::coalition::Coalition;
+use super::error::{EngineError, ErrorKind, Result};
+use super::estimate::{self, Estimate, EstimatorKind, Stopping};
+use super::game::{CachedGame, Game, ModelGame};
+use super::model::{Link, Structure};
+use super::plan::{self, ModelShape, PlanInput};
+use super::prepared::PreparedModel;
+use super::removal::{
+    ConditionalGaussian, ConditionalNeighbors, Fixed, Independent, Marginal, Removal, RemovalKind,
+};
+use super::summary::{Kernel, Summary};
+use super::target::Target;
+
+/// Draws per coalition for the random removals when the caller gives none.
+pub const DEFAULT_DRAWS: usize = 32;
+/// Most draws per coalition: each draw is a model row per coalition, and
+/// more than this buys no accuracy a budget could pay for.
+pub const MAX_DRAWS: usize = 4096;
+/// Kernel width for neighbour removal when the caller gives none.
+pub const DEFAULT_WIDTH: f64 = 1.0;
+/// Jobs predicted to take at most this long are cheaper to compute where
+/// the call arrives than to hand to a compute thread (measured: a handoff
+/// costs tens of microseconds; see the README's service benchmark).
+pub const INLINE_LIMIT: Duration = Duration::from_micros(20);
+
+/// How missing features are filled, with each choice's own parameters.
+#[derive(Debug, Clone, PartialEq)]
+pub enum RemovalChoice {
+    /// Fixed reference values; `None` uses the background mean.
+    Fixed(Option<Vec<f64>>),
+    Marginal,
+    Independent {
+        draws: usize,
+    },
+    ConditionalGaussian {
+        draws: usize,
+    },
+    ConditionalNeighbors {
+        width: f64,
+    },
+}
+
+impl RemovalChoice {
+    pub fn kind(&self) -> RemovalKind {
+        match self {
+            RemovalChoice::Fixed(_) => RemovalKind::Fixed,
+            RemovalChoice::Marginal => RemovalKind::Marginal,
+            RemovalChoice::Independent { .. } => RemovalKind::Independent,
+            RemovalChoice::ConditionalGaussian { .. } => RemovalKind::ConditionalGaussian,
+            RemovalChoice::ConditionalNeighbors { .. } => RemovalKind::ConditionalNeighbors,
+        }
+    }
+}
+
+/// One attribution request, as the caller gave it.
+#[derive(Debug, Clone)]
+pub struct Request {
+    pub instance: Vec<f64>,
+    pub removal: RemovalChoice,
+    pub target: Target,
+    pub summary: Summary,
+    /// `None` lets the planner choose.
+    pub estimator: Option<EstimatorKind>,
+    pub budget: Duration,
+    pub max_evaluations: u64,
+    /// Largest acceptable std error for sampled estimators; 0 lets the
+    /// engine use 1% of |v(all) − v(none)|.
+    pub tolerance: f64,
+    pub seed: u64,
+    pub enumeration_cap: usize,
+}
+
+impl Request {
+    /// A request with the engine's defaults: marginal removal, raw output,
+    /// Shapley values, automatic estimator, 1 s budget.
+    pub fn new(instance: Vec<f64>) -> Request {
+        Request {
+            instance,
+            removal: RemovalChoice::Marginal,
+            target: Target::Output,
+            summary: Summary::Shapley,
+            estimator: None,
+            budget: Duration::from_secs(1),
+            max_evaluations: 1 << 20,
+            tolerance: 0.0,
+            seed: 0,
+            enumeration_cap: plan::DEFAULT_ENUMERATION_CAP,
+        }
+    }
+}
+
+/// The removal of a validated request: parameters checked, FIXED's
+/// reference resolved.
+#[derive(Debug, Clone, PartialEq)]
+enum ValidRemoval {
+    Fixed(Vec<f64>),
+    Marginal,
+    Independent { draws: usize },
+    ConditionalGaussian { draws: usize },
+    ConditionalNeighbors { width: f64 },
+}
+
+impl ValidRemoval {
+    fn rows_per_coalition(&self, background_rows: usize) -> usize {
+        match self {
+            ValidRemoval::Fixed(_) => 1,
+            ValidRemoval::Marginal | ValidRemoval::ConditionalNeighbors { .. } => background_rows,
+            ValidRemoval::Independent { draws } | ValidRemoval::ConditionalGaussian { draws } => {
+                *draws
+            }
+        }
+    }
+}
+
+/// The sampled estimators, each with what it needs beyond the game.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Sampler {
+    Permutation,
+    PairedRegression(Kernel),
+    LeverageRegression,
+    MaximumSampleReuse,
+}
+
+/// Ready-to-run work.
+#[derive(Debug, Clone, PartialEq)]
+enum Work {
+    /// The exact tree algorithm over the background (marginal) or one
+    /// reference row (fixed).
+    TreeExact,
+    /// The linear closed form against the reference mean or fixed values.
+    LinearExact,
+    /// Every coalition the summary needs.
+    Enumerate,
+    /// An anytime sampler stopping at the tolerance (0: 1% of the gap), the
+    /// evaluation cap or the deadline.
+    Sample {
+        sampler: Sampler,
+        max_evaluations: u64,
+        tolerance: f64,
+    },
+}
+
+/// A validated, planned request. Owns what it needs (the prepared model is
+/// shared), so it can be handed to a compute thread.
+pub struct Job {
+    model: Arc<PreparedModel>,
+    instance: Vec<f64>,
+    removal: ValidRemoval,
+    target: Target,
+    summary: Summary,
+    seed: u64,
+    work: Work,
+    estimator: EstimatorKind,
+    plan_reason: String,
+    predicted: Duration,
+    /// When [`prepare`] was called: the explanation's elapsed time counts
+    /// from here.
+    prepared_at: Instant,
+}
+
+impl std::fmt::Debug for Job {
+    fn fmt(&self, formatter: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        formatter
+            .debug_struct("Job")
+            .field("estimator", &self.estimator)
+            .field("predicted", &self.predicted)
+            .field("plan_reason", &self.plan_reason)
+            .finish_non_exhaustive()
+    }
+}
+
+/// The answer with its accounting.
+#[derive(Debug, Clone)]
+pub struct Explanation {
+    pub estimate: Estimate,
+    pub estimator: EstimatorKind,
+    pub plan_reason: String,
+    pub coalitions_evaluated: u64,
+    pub model_rows_evaluated: u64,
+    pub cache_hits: u64,
+    /// From [`prepare`] to the end of [`Job::run`].
+    pub elapsed: Duration,
+}
+
+/// Validates `request` against `model` and plans it. Every refusal names
+/// its field; nothing is computed.
+pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
+    let prepared_at = Instant::now();
+    validate(model, &request)?;
+    let removal = validate_removal(model, request.removal)?;
+    let instances = match &request.target {
+        Target::DatasetLoss { rows, .. } => rows.nrows(),
+        _ => 1,
+    };
+    let background_rows = model.background().nrows();
+    let rows_per_coalition = removal
+        .rows_per_coalition(background_rows)
+        .saturating_mul(instances);
+    let shape = match model.structure() {
+        Structure::Linear(_) => ModelShape::Linear,
+        Structure::Trees(_) => ModelShape::Trees,
+        Structure::Opaque => ModelShape::Opaque,
+    };
+    let removal_kind = match removal {
+        ValidRemoval::Fixed(_) => RemovalKind::Fixed,
+        ValidRemoval::Marginal => RemovalKind::Marginal,
+        ValidRemoval::Independent { .. } => RemovalKind::Independent,
+        ValidRemoval::ConditionalGaussian { .. } => RemovalKind::ConditionalGaussian,
+        ValidRemoval::ConditionalNeighbors { .. } => RemovalKind::ConditionalNeighbors,
+    };
+    let references = match removal {
+        ValidRemoval::Fixed(_) => 1,
+        _ => background_rows,
+    };
+    let chosen = plan::plan(&PlanInput {
+        players: model.players().len(),
+        rows_per_coalition,
+        shape,
+        removal: removal_kind,
+        output_target: request.target == Target::Output,
+        summary: request.summary,
+        requested: request.estimator,
+        budget: request.budget,
+        max_evaluations: request.max_evaluations,
+        row_cost_ns: model.row_cost_ns(),
+        exact_cost_ns: model.exact_cost_ns(references),
+        enumeration_cap: request.enumeration_cap,
+    })?;
+    let work = match chosen.estimator {
+        EstimatorKind::TreeExact => Work::TreeExact,
+        EstimatorKind::LinearExact => Work::LinearExact,
+        EstimatorKind::Exact => Work::Enumerate,
+        sampled => Work::Sample {
+            sampler: match (sampled, request.summary) {
+                (EstimatorKind::Permutation, _) => Sampler::Permutation,
+                (EstimatorKind::PairedRegression, Summary::LinearFit(kernel)) => {
+                    Sampler::PairedRegression(kernel)
+                }
+                (EstimatorKind::PairedRegression, _) => Sampler::PairedRegression(Kernel::Shapley),
+                (EstimatorKind::LeverageRegression, _) => Sampler::LeverageRegression,
+                (EstimatorKind::MaximumSampleReuse, _) => Sampler::MaximumSampleReuse,
+                (other, _) => {
+                    return Err(EngineError::of_kind(
+                        ErrorKind::Internal,
+                        "estimator",
+                        format!("the planner chose {}, which is not a sampler", other.name()),
+                    ));
+                }
+            },
+            max_evaluations: chosen.max_evaluations,
+            tolerance: request.tolerance,
+        },
+    };
+    Ok(Job {
+        model: model.clone(),
+        instance: request.instance,
+        removal,
+        target: request.target,
+        summary: request.summary,
+        seed: request.seed,
+        work,
+        estimator: chosen.estimator,
+        plan_reason: chosen.reason,
+        predicted: chosen.predicted,
+        prepared_at,
+    })
+}
+
+impl Job {
+    pub fn estimator(&self) -> EstimatorKind {
+        self.estimator
+    }
+
+    /// Predicted computing time, from the prepared model's measured costs.
+    pub fn predicted(&self) -> Duration {
+        self.predicted
+    }
+
+    /// Whether the job is cheaper to compute where the call arrives than
+    /// to hand to a compute thread.
+    pub fn runs_inline(&self) -> bool {
+        self.predicted <= INLINE_LIMIT
+    }
+
+    /// Computes the explanation. Sampled estimators stop at `deadline` with
+    /// what they have.
+    pub fn run(self, deadline: Instant) -> Result<Explanation> {
+        let model = self.model.as_ref();
+        let players = model.players();
+        let (estimate, counts) = match &self.work {
+            Work::TreeExact => {
+                let Structure::Trees(ensemble) = model.structure() else {
+                    return Err(self.not_planned("a tree ensemble"));
+                };
+                let estimate = match &self.removal {
+                    ValidRemoval::Fixed(values) => {
+                        let row = ArrayView2::from_shape((1, values.len()), values)
+                            .map_err(|_| self.not_planned("one reference row"))?;
+                        estimate::tree::explain(
+                            ensemble,
+                            players,
+                            &self.instance,
+                            row,
+                            self.summary,
+                        )?
+                    }
+                    _ => estimate::tree::explain(
+                        ensemble,
+                        players,
+                        &self.instance,
+                        model.background(),
+                        self.summary,
+                    )?,
+                };
+                (estimate, Counts::default())
+            }
+            Work::LinearExact => {
+                let Structure::Linear(form) = model.structure() else {
+                    return Err(self.not_planned("a linear model"));
+                };
+                let reference = match &self.removal {
+                    ValidRemoval::Fixed(values) => values.as_slice(),
+                    _ => model.background_mean()?,
+                };
+                let estimate = estimate::linear::explain(form, players, &self.instance, reference)?;
+                (estimate, Counts::default())
+            }
+            Work::Enumerate | Work::Sample { .. } => self.run_on_game(deadline)?,
+        };
+        let finite = estimate.value_full.is_finite()
+            && estimate.value_empty.is_finite()
+            && estimate.values.iter().all(|v| v.is_finite());
+        if !finite {
+            return Err(EngineError::failed_precondition(
+                "model",
+                "gave a non-finite output for this instance or a coalition of it; nothing can be attributed",
+            ));
+        }
+        Ok(Explanation {
+            estimate,
+            estimator: self.estimator,
+            plan_reason: self.plan_reason,
+            coalitions_evaluated: counts.coalitions,
+            model_rows_evaluated: counts.model_rows,
+            cache_hits: counts.cache_hits,
+            elapsed: self.prepared_at.elapsed(),
+        })
+    }
+
+    /// Enumeration and sampling: removal ∘ model ∘ target behind the
+    /// per-request cache.
+    fn run_on_game(&self, deadline: Instant) -> Result<(Estimate, Counts)> {
+        let model = self.model.as_ref();
+        let background = model.background();
+        let removal: Box<dyn Removal + '_> = match &self.removal {
+            ValidRemoval::Fixed(values) => {
+                Box::new(Fixed::try_new(values.clone(), background.ncols())?)
+            }
+            ValidRemoval::Marginal => Box::new(Marginal::try_new(background)?),
+            ValidRemoval::Independent { draws } => {
+                Box::new(Independent::try_new(background, *draws, self.seed)?)
+            }
+            ValidRemoval::ConditionalGaussian { draws } => {
+                Box::new(ConditionalGaussian::try_new(background, *draws, self.seed)?)
+            }
+            ValidRemoval::ConditionalNeighbors { width } => {
+                Box::new(ConditionalNeighbors::try_new(background, *width)?)
+            }
+        };
+        let game = ModelGame::try_new(
+            model.model(),
+            removal.as_ref(),
+            model.players(),
+            &self.instance,
+            &self.target,
+        )?;
+        let cached = CachedGame::new(&game);
+        let estimate = match self.work {
+            Work::Sample {
+                sampler,
+                max_evaluations,
+                tolerance,
+            } => {
+                let tolerance = if tolerance > 0.0 {
+                    tolerance
+                } else {
+                    let ends = [Coalition::EMPTY, Coalition::full(model.players().len())];
+                    let mut values = [0.0; 2];
+                    cached.values(&ends, &mut values);
+                    0.01 * (values[1] - values[0]).abs()
+                };
+                let stopping = Stopping {
+                    tolerance,
+                    max_evaluations,
+                    deadline: Some(deadline),
+                };
+                let seed = self.seed;
+                match sampler {
+                    Sampler::Permutation => {
+                        estimate::permutation::shapley(&cached, &stopping, seed)?
+                    }
+                    Sampler::PairedRegression(kernel) => {
+                        estimate::regression::paired(&cached, kernel, &stopping, seed)?
+                    }
+                    Sampler::LeverageRegression => {
+                        estimate::regression::leverage(&cached, &stopping, seed)?
+                    }
+                    Sampler::MaximumSampleReuse => {
+                        estimate::msr::banzhaf(&cached, &stopping, seed)?
+                    }
+                }
+            }
+            _ => estimate::exact::explain(&cached, self.summary)?,
+        };
+        let counts = Counts {
+            coalitions: cached.evaluations(),
+            model_rows: cached.model_rows(),
+            cache_hits: cached.cache_hits(),
+        };
+        Ok((estimate, counts))
+    }
+
+    /// The planner chose work this model cannot do: a bug, not the
+    /// caller's doing.
+    fn not_planned(&self, needs: &str) -> EngineError {
+        EngineError::of_kind(
+            ErrorKind::Internal,
+            "estimator",
+            format!(
+                "{} was planned, but it needs {needs}; please report this",
+                self.estimator.name()
+            ),
+        )
+    }
+}
+
+/// What a run evaluated, for the accounting.
+#[derive(Debug, Clone, Copy, Default)]
+struct Counts {
+    coalitions: u64,
+    model_rows: u64,
+    cache_hits: u64,
+}
+
+/// Checks that do not depend on the removal; every refusal names its field.
+fn validate(model: &PreparedModel, request: &Request) -> Result<()> {
+    let inputs = model.model().inputs();
+    let players = model.players();
+    if request.instance.len() != inputs {
+        return Err(EngineError::new(
+            "instance",
+            format!(
+                "has {} values; the model takes {inputs}",
+                request.instance.len()
+            ),
+        ));
+    }
+    let conditional = matches!(
+        request.removal,
+        RemovalChoice::ConditionalGaussian { .. } | RemovalChoice::ConditionalNeighbors { .. }
+    );
+    let missing_ok = model.model().accepts_missing() && !conditional;
+    for (j, x) in request.instance.iter().enumerate() {
+        if x.is_infinite() || (x.is_nan() && !missing_ok) {
+            let why = if x.is_infinite() {
+                "is infinite".to_string()
+            } else if conditional {
+                "is NaN; conditional removal needs every feature present in the instance"
+                    .to_string()
+            } else {
+                format!(
+                    "is NaN; a {} model does not accept missing values",
+                    model.model().kind()
+                )
+            };
+            return Err(EngineError::new(
+                "instance",
+                format!(
+                    "value {j} (player {:?}) {why}",
+                    players.names()[players.player_of(j)]
+                ),
+            ));
+        }
+    }
+    let link = model.model().link();
+    match &request.target {
+        Target::Probability if link != Link::Logistic => {
+            return Err(EngineError::new(
+                "target",
+                "PROBABILITY needs a model with a logistic link; use OUTPUT for this model",
+            ));
+        }
+        Target::Loss { label } => check_label("label", *label, link)?,
+        Target::DatasetLoss { rows, labels } => {
+            check_dataset(rows, labels, inputs)?;
+            for label in labels {
+                check_label("dataset.labels", *label, link)?;
+            }
+        }
+        _ => {}
+    }
+    if !(request.tolerance >= 0.0 && request.tolerance.is_finite()) {
+        return Err(EngineError::new("tolerance", "must be a finite number ≥ 0"));
+    }
+    if request.max_evaluations < 2 {
+        return Err(EngineError::new(
+            "max_evaluations",
+            "must allow at least v(all) and v(none): 2 or more",
+        ));
+    }
+    Ok(())
+}
+
+/// Checks the removal's own parameters and resolves FIXED's reference.
+fn validate_removal(model: &PreparedModel, removal: RemovalChoice) -> Result<ValidRemoval> {
+    let inputs = model.model().inputs();
+    let draws = |draws: usize, paired: bool| -> Result<usize> {
+        if draws == 0 || draws > MAX_DRAWS || (paired && !draws.is_multiple_of(2)) {
+            let what = if paired {
+                "an even number from 2" // antithetic pairs
+            } else {
+                "a number from 1"
+            };
+            return Err(EngineError::new(
+                "draws",
+                format!("must be {what} to {MAX_DRAWS}; got {draws}"),
+            ));
+        }
+        Ok(draws)
+    };
+    Ok(match removal {
+        RemovalChoice::Fixed(Some(values)) => {
+            Fixed::try_new(values.clone(), inputs)?;
+            ValidRemoval::Fixed(values)
+        }
+        RemovalChoice::Fixed(None) => ValidRemoval::Fixed(model.background_mean()?.to_vec()),
+        RemovalChoice::Marginal => ValidRemoval::Marginal,
+        RemovalChoice::Independent { draws: n } => ValidRemoval::Independent {
+            draws: draws(n, false)?,
+        },
+        RemovalChoice::ConditionalGaussian { draws: n } => ValidRemoval::ConditionalGaussian {
+            draws: draws(n, true)?,
+        },
+        RemovalChoice::ConditionalNeighbors { width } => {
+            if !(width.is_finite() && width > 0.0) {
+                return Err(EngineError::new(
+                    "width",
+                    format!("must be a finite number greater than 0; got {width}"),
+                ));
+            }
+            ValidRemoval::ConditionalNeighbors { width }
+        }
+    })
+}
+
+fn check_dataset(rows: &Array2<f64>, labels: &[f64], inputs: usize) -> Result<()> {
+    if rows.ncols() != inputs || rows.nrows() == 0 {
+        return Err(EngineError::new(
+            "dataset",
+            format!(
+                "needs at least one row of {inputs} columns, got {} × {}",
+                rows.nrows(),
+                rows.ncols()
+            ),
+        ));
+    }
+    if labels.len() != rows.nrows() {
+        return Err(EngineError::new(
+            "dataset.labels",
+            format!("{} labels for {} rows", labels.len(), rows.nrows()),
+        ));
+    }
+    Ok(())
+}
+
+fn check_label(field: &str, label: f64, link: Link) -> Result<()> {
+    let valid = match link {
+        Link::Logistic => (0.0..=1.0).contains(&label),
+        Link::Identity => label.is_finite(),
+    };
+    if valid {
+        Ok(())
+    } else {
+        Err(EngineError::new(
+            field,
+            format!(
+                "{label} is not a valid label: a logistic model needs 0 or 1 (or a probability in between), a regression model a finite number"
+            ),
+        ))
+    }
+}

@@ -1,0 +1,195 @@
+//! The prepared model: a registered model with its players and background,
+//! and everything derived from them alone — background means, neighbour
+//! scales, the Gaussian fit, the tree ensemble summarised against its
+//! background — computed once, at registration and on load. Requests borrow
+//! it; nothing here is recomputed or copied per request.
+
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use ndarray::{Array2, ArrayView2};
+
+use super::error::{EngineError, ErrorKind, Result};
+use super::estimate::tree;
+use super::model::{Model, Structure};
+use super::players::Players;
+use super::removal::Fixed;
+use super::summary::Summary;
+
+/// Background rows the exact tree algorithm is timed on at preparation.
+const TREE_TIMING_ROWS: usize = 16;
+
+/// A model ready to explain. Shared as `Arc<PreparedModel>`; it never
+/// changes after preparation.
+pub struct PreparedModel {
+    model: Arc<dyn Model>,
+    players: Players,
+    /// Background (reference) rows × model inputs.
+    background: Array2<f64>,
+    /// Measured time of one model row in a batched prediction, in ns.
+    row_cost_ns: f64,
+    /// Column means, the reference of FIXED removal without values and of
+    /// the linear closed form; refused when the background has missing
+    /// values.
+    background_mean: Result<Vec<f64>>,
+    /// Measured time of the exact tree algorithm per (reference row) over
+    /// the whole ensemble, in ns; 0 for other models.
+    tree_reference_cost_ns: f64,
+    /// How long preparation took.
+    preparation: Duration,
+}
+
+impl std::fmt::Debug for PreparedModel {
+    fn fmt(&self, formatter: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        formatter
+            .debug_struct("PreparedModel")
+            .field("kind", &self.model.kind())
+            .field("players", &self.players.names())
+            .field("background", &self.background.dim())
+            .finish_non_exhaustive()
+    }
+}
+
+/// A statistic the background cannot give is the registration's limit, not
+/// the caller's mistake.
+fn precondition(error: EngineError) -> EngineError {
+    EngineError {
+        kind: ErrorKind::FailedPrecondition,
+        ..error
+    }
+}
+
+impl PreparedModel {
+    /// Checks that model, players and background agree, and derives every
+    /// per-model statistic. `row_cost_ns` is the measured time of one model
+    /// row (see the registry).
+    pub fn try_new(
+        model: Arc<dyn Model>,
+        players: Players,
+        background: Array2<f64>,
+        row_cost_ns: f64,
+    ) -> Result<PreparedModel> {
+        let started = Instant::now();
+        let inputs = model.inputs();
+        if players.features() != inputs {
+            return Err(EngineError::new(
+                "features",
+                format!(
+                    "{} features are described for a model with {inputs} inputs",
+                    players.features()
+                ),
+            ));
+        }
+        if background.ncols() != inputs || background.nrows() == 0 {
+            return Err(EngineError::new(
+                "background",
+                format!(
+                    "needs at least one row of {inputs} columns, has {} × {}",
+                    background.nrows(),
+                    background.ncols()
+                ),
+            ));
+        }
+        if !(row_cost_ns.is_finite() && row_cost_ns >= 0.0) {
+            return Err(EngineError::new(
+                "row_cost_ns",
+                "must be a finite number of nanoseconds ≥ 0",
+            ));
+        }
+        let view = background.view();
+        let background_mean = Fixed::background_mean(view)
+            .map(|fixed| fixed.values().to_vec())
+            .map_err(precondition);
+        let mut prepared = PreparedModel {
+            model,
+            players,
+            background,
+            row_cost_ns,
+            background_mean,
+            tree_reference_cost_ns: 0.0,
+            preparation: Duration::ZERO,
+        };
+        prepared.tree_reference_cost_ns = prepared.measure_tree_reference_cost();
+        prepared.preparation = started.elapsed();
+        Ok(prepared)
+    }
+
+    pub fn model(&self) -> &dyn Model {
+        self.model.as_ref()
+    }
+
+    pub fn shared_model(&self) -> &Arc<dyn Model> {
+        &self.model
+    }
+
+    pub fn players(&self) -> &Players {
+        &self.players
+    }
+
+    pub fn background(&self) -> ArrayView2<'_, f64> {
+        self.background.view()
+    }
+
+    pub fn row_cost_ns(&self) -> f64 {
+        self.row_cost_ns
+    }
+
+    pub fn structure(&self) -> Structure<'_> {
+        self.model.structure()
+    }
+
+    /// The background's column means, or why there are none.
+    pub fn background_mean(&self) -> Result<&[f64]> {
+        self.background_mean
+            .as_deref()
+            .map_err(|error| error.clone())
+    }
+
+    /// Predicted time of the model-specific exact algorithm against
+    /// `references` reference rows (1 for FIXED removal), in ns; `None`
+    /// when the model has none.
+    pub fn exact_cost_ns(&self, references: usize) -> Option<f64> {
+        match self.structure() {
+            // One pass over the weights: about one model row.
+            Structure::Linear(_) => Some(self.row_cost_ns),
+            Structure::Trees(_) => Some(self.tree_reference_cost_ns * references as f64),
+            Structure::Opaque => None,
+        }
+    }
+
+    /// Times the exact tree algorithm for the first background row against
+    /// up to [`TREE_TIMING_ROWS`] background rows, and returns the time per
+    /// reference row.
+    fn measure_tree_reference_cost(&self) -> f64 {
+        let Structure::Trees(ensemble) = self.structure() else {
+            return 0.0;
+        };
+        let rows = self.background.nrows().min(TREE_TIMING_ROWS);
+        let references = self.background.slice(ndarray::s![..rows, ..]);
+        let instance = self.background.row(0).to_vec();
+        let started = Instant::now();
+        let timed = tree::explain(
+            ensemble,
+            &self.players,
+            &instance,
+            references,
+            Summary::Shapley,
+        );
+        match timed {
+            Ok(_) => started.elapsed().as_nanos() as f64 / rows as f64,
+            Err(_) => 0.0,
+        }
+    }
+
+    /// How long [`PreparedModel::try_new`] took.
+    pub fn preparation(&self) -> Duration {
+        self.preparation
+    }
+
+    /// Heap bytes of what preparation derived (not counting the model and
+    /// background themselves).
+    pub fn derived_bytes(&self) -> usize {
+        let mean = self.background_mean.as_ref().map_or(0, Vec::len);
+        size_of::<f64>() * mean
+    }
+}
