@@ -66,7 +66,6 @@ pub fn explain(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{LinearModel, Link};
 
     #[test]
     fn grouped_weights_add_up_within_the_group() {
@@ -74,11 +73,14 @@ mod tests {
         // features' shares ("A unified approach to interpreting model
         // predictions", NeurIPS 2017). Hand arithmetic:
         // a: 2·(1−0) = 2; g = {b, c}: −1·(3−1) + 0.5·(4−2) = −1.
-        let model = LinearModel::try_new(vec![2.0, -1.0, 0.5], 0.25, Link::Logistic).unwrap();
+        let model = LinearForm {
+            weights: &[2.0, -1.0, 0.5],
+            intercept: 0.25,
+        };
         let names: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
         let groups: Vec<String> = ["", "g", "g"].iter().map(|s| s.to_string()).collect();
         let players = Players::try_new(&names, &groups).unwrap();
-        let estimate = explain(model.form(), &players, &[1.0, 3.0, 4.0], &[0.0, 1.0, 2.0]).unwrap();
+        let estimate = explain(model, &players, &[1.0, 3.0, 4.0], &[0.0, 1.0, 2.0]).unwrap();
         assert_eq!(estimate.values, vec![2.0, -1.0]);
         assert_eq!(estimate.value_full, 0.25 + 2.0 - 3.0 + 2.0);
         assert_eq!(estimate.value_empty, 0.25 - 1.0 + 1.0);
@@ -88,29 +90,32 @@ mod tests {
 
     #[test]
     fn mismatched_lengths_name_their_field() {
-        let model = LinearModel::try_new(vec![1.0, 1.0], 0.0, Link::Identity).unwrap();
+        let model = LinearForm {
+            weights: &[1.0, 1.0],
+            intercept: 0.0,
+        };
         let players = Players::singletons(2);
         let three = Players::singletons(3);
         assert_eq!(
-            explain(model.form(), &three, &[0.0, 0.0], &[0.0, 0.0])
+            explain(model, &three, &[0.0, 0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "features"
         );
         assert_eq!(
-            explain(model.form(), &players, &[0.0], &[0.0, 0.0])
+            explain(model, &players, &[0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "instance"
         );
         assert_eq!(
-            explain(model.form(), &players, &[f64::NAN, 0.0], &[0.0, 0.0])
+            explain(model, &players, &[f64::NAN, 0.0], &[0.0, 0.0])
                 .unwrap_err()
                 .field,
             "instance"
         );
         assert_eq!(
-            explain(model.form(), &players, &[0.0, 0.0], &[0.0])
+            explain(model, &players, &[0.0, 0.0], &[0.0])
                 .unwrap_err()
                 .field,
             "background"

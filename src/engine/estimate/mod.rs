@@ -6,10 +6,12 @@
 //! tolerance, the evaluation cap or the deadline, whichever comes first.
 
 pub mod exact;
+mod fit;
 pub mod linear;
 pub mod msr;
 pub mod permutation;
 pub mod regression;
+mod sampling;
 pub mod tree;
 
 use std::time::Instant;

@@ -5,7 +5,7 @@
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
-use super::permutation::{
+use super::sampling::{
     Budget, RunningMoments, check_players, require_evaluations, round_units, single_player,
 };
 use super::{Estimate, Stopping};
