@@ -1,16 +1,23 @@
 //! The gRPC face of apportion: the generated API types, their conversion to
-//! registry and engine types, the error → status mapping, and the server
-//! (handlers, compute pool, health, reflection).
+//! registry and engine types, the error → status mapping, one file per
+//! service, the compute pool, deadlines, and the server that runs them with
+//! health and reflection.
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
 
+mod attributions;
 pub mod config;
 pub mod convert;
+pub mod deadline;
+mod diagnostics;
+pub mod pool;
+mod registry_api;
 pub mod server;
 pub mod status;
 
 pub use config::{ConfigError, ConfigLayer};
-pub use server::{ComputePool, Config, State, run};
+pub use pool::ComputePool;
+pub use server::{Config, State, run};
 pub use status::{ServiceError, status_of};
 
 /// Types and client/server stubs generated from

@@ -1,0 +1,84 @@
+//! Deadlines: the `grpc-timeout` a call carries, and the budget an Explain
+//! call gets within it.
+
+use std::time::Duration;
+
+use tonic::metadata::MetadataMap;
+
+/// The `grpc-timeout` header (gRPC over HTTP/2 protocol spec): at most 8
+/// digits and a unit, H, M, S, m (milli), u (micro) or n (nano).
+pub fn grpc_timeout(metadata: &MetadataMap) -> Option<Duration> {
+    let text = metadata.get("grpc-timeout")?.to_str().ok()?;
+    let (digits, unit) = text.split_at(text.len().checked_sub(1)?);
+    if digits.is_empty() || digits.len() > 8 {
+        return None;
+    }
+    let amount: u64 = digits.parse().ok()?;
+    Some(match unit {
+        "H" => Duration::from_secs(amount * 3600),
+        "M" => Duration::from_secs(amount * 60),
+        "S" => Duration::from_secs(amount),
+        "m" => Duration::from_millis(amount),
+        "u" => Duration::from_micros(amount),
+        "n" => Duration::from_nanos(amount),
+        _ => return None,
+    })
+}
+
+/// The budget an Explain call gets: what it asked for (or the default),
+/// cut to the deadline less the margin.
+pub fn effective_budget(
+    budget_ms: u32,
+    default_budget: Duration,
+    timeout: Option<Duration>,
+    margin: Duration,
+) -> Duration {
+    let asked = if budget_ms == 0 {
+        default_budget
+    } else {
+        Duration::from_millis(u64::from(budget_ms))
+    };
+    match timeout {
+        Some(timeout) => asked.min(timeout.saturating_sub(margin)),
+        None => asked,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn grpc_timeout_header_units_are_read() {
+        // Units from the gRPC over HTTP/2 protocol spec (PROTOCOL-HTTP2.md).
+        let mut metadata = MetadataMap::new();
+        metadata.insert("grpc-timeout", "250m".parse().unwrap());
+        assert_eq!(grpc_timeout(&metadata), Some(Duration::from_millis(250)));
+        metadata.insert("grpc-timeout", "3S".parse().unwrap());
+        assert_eq!(grpc_timeout(&metadata), Some(Duration::from_secs(3)));
+        metadata.insert("grpc-timeout", "123456789m".parse().unwrap());
+        assert_eq!(grpc_timeout(&metadata), None, "more than 8 digits");
+        metadata.insert("grpc-timeout", "5x".parse().unwrap());
+        assert_eq!(grpc_timeout(&metadata), None);
+    }
+
+    #[test]
+    fn the_budget_is_cut_to_the_deadline_less_the_margin() {
+        // The API's documented rule (common practice, no source).
+        let default = Duration::from_millis(200);
+        let margin = Duration::from_millis(5);
+        assert_eq!(effective_budget(0, default, None, margin), default);
+        assert_eq!(
+            effective_budget(50, default, None, margin),
+            Duration::from_millis(50)
+        );
+        assert_eq!(
+            effective_budget(50, default, Some(Duration::from_millis(30)), margin),
+            Duration::from_millis(25)
+        );
+        assert_eq!(
+            effective_budget(0, default, Some(Duration::from_millis(2)), margin),
+            Duration::ZERO
+        );
+    }
+}
