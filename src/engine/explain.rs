@@ -12,7 +12,8 @@ use super::game::{CachedGame, Game, ModelGame};
 use super::plan::{self, ModelShape, PlanInput};
 use super::players::Players;
 use super::removal::{
-    ConditionalGaussian, ConditionalNeighbors, Fixed, Independent, Marginal, Removal, RemovalKind,
+    ConditionalGaussian, ConditionalNeighbors, Fixed, GaussianFit, Independent, Marginal, Removal,
+    RemovalKind, inverse_scales,
 };
 use super::summary::Summary;
 use super::target::Target;
@@ -140,6 +141,10 @@ pub fn explain(subject: &Subject, request: &Request, started: Instant) -> Result
     validate(subject, request)?;
     let model = subject.model;
     let background = subject.background;
+    // Derived from the background per request until the prepared model
+    // holds them.
+    let gaussian_fit;
+    let neighbor_scales;
     let removal: Box<dyn Removal + '_> = match &request.removal {
         RemovalChoice::Fixed(Some(values)) => {
             Box::new(Fixed::try_new(values.clone(), model.inputs())?)
@@ -149,13 +154,21 @@ pub fn explain(subject: &Subject, request: &Request, started: Instant) -> Result
         RemovalChoice::Independent { draws } => {
             Box::new(Independent::try_new(background, *draws, request.seed)?)
         }
-        RemovalChoice::ConditionalGaussian { draws } => Box::new(ConditionalGaussian::try_new(
-            background,
-            *draws,
-            request.seed,
-        )?),
+        RemovalChoice::ConditionalGaussian { draws } => {
+            gaussian_fit = GaussianFit::try_new(background)?;
+            Box::new(ConditionalGaussian::try_new(
+                &gaussian_fit,
+                *draws,
+                request.seed,
+            )?)
+        }
         RemovalChoice::ConditionalNeighbors { width } => {
-            Box::new(ConditionalNeighbors::try_new(background, *width)?)
+            neighbor_scales = inverse_scales(background)?;
+            Box::new(ConditionalNeighbors::try_new(
+                background,
+                &neighbor_scales,
+                *width,
+            )?)
         }
     };
     let instances = match &request.target {
