@@ -97,9 +97,9 @@ impl GaussianFit {
         self.mean.len()
     }
 
-    /// `x` on the present features and `E[x_M | x_P]` on the missing ones
-    /// (see [`GaussianFit::condition`]). `x` and `present` have one entry
-    /// per feature.
+    /// `x` on the present features and `E[x_M | x_P]` on the missing ones,
+    /// by the same code the removal's draws are centred on. `x` and
+    /// `present` must have one entry per feature (it panics otherwise).
     pub fn conditional_mean(&self, x: &[f64], present: &[bool]) -> Vec<f64> {
         assert_eq!(x.len(), self.features(), "one value per feature");
         assert_eq!(present.len(), self.features(), "one flag per feature");
