@@ -363,21 +363,22 @@ impl Job {
     fn run_on_game(&self, deadline: Instant) -> Result<(Estimate, Counts)> {
         let model = self.model.as_ref();
         let background = model.background();
-        let removal: Box<dyn Removal + '_> = match &self.removal {
-            ValidRemoval::Fixed(values) => {
-                Box::new(Fixed::try_new(values.clone(), background.ncols())?)
-            }
-            ValidRemoval::Marginal => Box::new(Marginal::try_new(background)?),
-            ValidRemoval::Independent { draws } => {
-                Box::new(Independent::try_new(background, *draws, self.seed)?)
-            }
-            ValidRemoval::ConditionalGaussian { draws } => {
-                Box::new(ConditionalGaussian::try_new(background, *draws, self.seed)?)
-            }
-            ValidRemoval::ConditionalNeighbors { width } => {
-                Box::new(ConditionalNeighbors::try_new(background, *width)?)
-            }
-        };
+        let removal: Box<dyn Removal + '_> =
+            match &self.removal {
+                ValidRemoval::Fixed(values) => {
+                    Box::new(Fixed::try_new(values.clone(), background.ncols())?)
+                }
+                ValidRemoval::Marginal => Box::new(Marginal::try_new(background)?),
+                ValidRemoval::Independent { draws } => {
+                    Box::new(Independent::try_new(background, *draws, self.seed)?)
+                }
+                ValidRemoval::ConditionalGaussian { draws } => Box::new(
+                    ConditionalGaussian::try_new(model.gaussian()?, *draws, self.seed)?,
+                ),
+                ValidRemoval::ConditionalNeighbors { width } => Box::new(
+                    ConditionalNeighbors::try_new(background, model.neighbor_scales()?, *width)?,
+                ),
+            };
         let game = ModelGame::try_new(
             model.model(),
             removal.as_ref(),

@@ -4,7 +4,7 @@
 //! background — computed once, at registration and on load. Requests borrow
 //! it; nothing here is recomputed or copied per request.
 
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 use std::time::{Duration, Instant};
 
 use ndarray::{Array2, ArrayView2};
@@ -13,11 +13,16 @@ use super::error::{EngineError, ErrorKind, Result};
 use super::estimate::tree;
 use super::model::{Model, Structure};
 use super::players::Players;
-use super::removal::Fixed;
+use super::removal::{self, GaussianFit};
 use super::summary::Summary;
 
 /// Background rows the exact tree algorithm is timed on at preparation.
 const TREE_TIMING_ROWS: usize = 16;
+
+/// Largest Gaussian fit made at preparation, in multiply-adds (rows ×
+/// features²): about a tenth of a second. A larger one is made by the first
+/// request that needs it, then kept.
+const EAGER_GAUSSIAN_WORK: usize = 100_000_000;
 
 /// A model ready to explain. Shared as `Arc<PreparedModel>`; it never
 /// changes after preparation.
@@ -32,6 +37,11 @@ pub struct PreparedModel {
     /// the linear closed form; refused when the background has missing
     /// values.
     background_mean: Result<Vec<f64>>,
+    /// Per-feature inverse standard deviations for neighbour removal, or
+    /// why there are none.
+    neighbor_scales: Result<Vec<f64>>,
+    /// The Gaussian fitted to the background, or why none fits.
+    gaussian: OnceLock<Result<GaussianFit>>,
     /// Measured time of the exact tree algorithm per (reference row) over
     /// the whole ensemble, in ns; 0 for other models.
     tree_reference_cost_ns: f64,
@@ -97,19 +107,25 @@ impl PreparedModel {
             ));
         }
         let view = background.view();
-        let background_mean = Fixed::background_mean(view)
-            .map(|fixed| fixed.values().to_vec())
-            .map_err(precondition);
+        let background_mean = removal::background_mean(view).map_err(precondition);
+        let neighbor_scales = removal::inverse_scales(view).map_err(precondition);
         let mut prepared = PreparedModel {
             model,
             players,
             background,
             row_cost_ns,
             background_mean,
+            neighbor_scales,
+            gaussian: OnceLock::new(),
             tree_reference_cost_ns: 0.0,
             preparation: Duration::ZERO,
         };
         prepared.tree_reference_cost_ns = prepared.measure_tree_reference_cost();
+        let (rows, features) = prepared.background.dim();
+        if rows.saturating_mul(features).saturating_mul(features) <= EAGER_GAUSSIAN_WORK {
+            // Whether it fits or not, the outcome is kept for the requests.
+            let _ = prepared.gaussian();
+        }
         prepared.preparation = started.elapsed();
         Ok(prepared)
     }
@@ -142,6 +158,22 @@ impl PreparedModel {
     pub fn background_mean(&self) -> Result<&[f64]> {
         self.background_mean
             .as_deref()
+            .map_err(|error| error.clone())
+    }
+
+    /// Per-feature inverse standard deviations for neighbour removal.
+    pub fn neighbor_scales(&self) -> Result<&[f64]> {
+        self.neighbor_scales
+            .as_deref()
+            .map_err(|error| error.clone())
+    }
+
+    /// The Gaussian fitted to the background, made on first use when it was
+    /// too large to make at preparation.
+    pub fn gaussian(&self) -> Result<&GaussianFit> {
+        self.gaussian
+            .get_or_init(|| GaussianFit::try_new(self.background.view()).map_err(precondition))
+            .as_ref()
             .map_err(|error| error.clone())
     }
 
@@ -189,7 +221,14 @@ impl PreparedModel {
     /// Heap bytes of what preparation derived (not counting the model and
     /// background themselves).
     pub fn derived_bytes(&self) -> usize {
-        let mean = self.background_mean.as_ref().map_or(0, Vec::len);
-        size_of::<f64>() * mean
+        let floats = |values: &Result<Vec<f64>>| values.as_ref().map_or(0, Vec::len);
+        let features = self.background.ncols();
+        // Mean, scales, correlation and its factor.
+        let gaussian = match self.gaussian.get() {
+            Some(Ok(_)) => 2 * features + 2 * features * features,
+            _ => 0,
+        };
+        size_of::<f64>()
+            * (floats(&self.background_mean) + floats(&self.neighbor_scales) + gaussian)
     }
 }

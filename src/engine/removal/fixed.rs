@@ -4,8 +4,8 @@
 
 use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 
+use super::Removal;
 use super::marginal::{require_finite, require_rows};
-use super::{Removal, RemovalKind};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -34,34 +34,32 @@ impl Fixed {
 
     /// The column means of `background` as the reference values.
     pub fn background_mean(background: ArrayView2<'_, f64>) -> Result<Fixed> {
-        require_rows(background, 1, "FIXED removal without fixed_values")?;
-        require_finite(background)?;
-        let rows = background.nrows() as f64;
-        let values = background
-            .columns()
-            .into_iter()
-            .map(|column| column.sum() / rows)
-            .collect();
-        Ok(Fixed { values })
+        Ok(Fixed {
+            values: background_mean(background)?,
+        })
     }
 
     /// The reference row, one value per feature.
     pub fn values(&self) -> &[f64] {
         &self.values
     }
+}
 
-    /// Features the reference row covers; the caller checks it against the
-    /// model's inputs.
-    pub fn features(&self) -> usize {
-        self.values.len()
-    }
+/// The mean of each background column: the reference FIXED removal uses when
+/// no values are given, computed once per background. Refuses a background
+/// without rows or with a missing or infinite value.
+pub fn background_mean(background: ArrayView2<'_, f64>) -> Result<Vec<f64>> {
+    require_rows(background, 1, "FIXED removal without fixed_values")?;
+    require_finite(background)?;
+    let rows = background.nrows() as f64;
+    Ok(background
+        .columns()
+        .into_iter()
+        .map(|column| column.sum() / rows)
+        .collect())
 }
 
 impl Removal for Fixed {
-    fn kind(&self) -> RemovalKind {
-        RemovalKind::Fixed
-    }
-
     fn rows_per_coalition(&self) -> usize {
         1
     }

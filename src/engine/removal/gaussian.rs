@@ -1,57 +1,55 @@
-//! CONDITIONAL_GAUSSIAN removal: the background is summarised by a
-//! multivariate normal, and missing features are drawn from its conditional
-//! distribution given the present ones, in antithetic pairs.
+//! CONDITIONAL_GAUSSIAN removal: the background is summarised once by a
+//! multivariate normal ([`GaussianFit`]), and each request draws missing
+//! features from its conditional distribution given the present ones, in
+//! antithetic pairs.
 
 use nalgebra::{Cholesky, DMatrix, DVector, SymmetricEigen};
 use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 use rand_distr::{Distribution, StandardNormal};
 
+use super::Removal;
 use super::independent::coalition_rng;
 use super::marginal::{require_finite, require_rows};
-use super::{Removal, RemovalKind};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
-/// Ridge added to the covariance diagonal, as a fraction of the mean
-/// variance: enough for a singular covariance (a constant or duplicated
-/// feature) to factor, small enough not to move conditional means visibly.
-const RIDGE_FRACTION: f64 = 1e-12;
+/// Ridge added to the diagonal of the correlation matrix (whose diagonal is
+/// 1): enough for a singular covariance (duplicated features) to factor,
+/// small enough not to move conditional means visibly. Added in correlation
+/// space it is relative to each feature's own variance, so a feature in
+/// currency units cannot swamp one measured as a ratio.
+const RIDGE: f64 = 1e-12;
 
-/// Requires a NaN-free instance (the front door checks it); a NaN on a
-/// present feature yields NaN rows, never a panic.
+/// The mean and sample covariance (denominator n − 1) of a background,
+/// with the factors conditioning needs, computed once per background.
+///
+/// The covariance is kept as per-feature standard deviations and a
+/// correlation matrix, and conditioning is done on the correlations:
+/// factoring the covariance itself when feature variances differ by 10^12
+/// loses the small ones to rounding, and a common ridge would exceed them.
+/// A constant feature (standard deviation 0) is uncorrelated with the rest
+/// and, when missing, keeps its background value exactly.
 #[derive(Debug, Clone)]
-pub struct ConditionalGaussian {
+pub struct GaussianFit {
     mean: DVector<f64>,
-    covariance: DMatrix<f64>,
-    /// Square-root factor of the whole covariance, for the empty coalition.
+    /// Standard deviation of each feature; 0 for a constant one.
+    scale: DVector<f64>,
+    /// Correlation matrix plus [`RIDGE`] on the diagonal.
+    correlation: DMatrix<f64>,
+    /// Square-root factor of `correlation`, for the empty coalition.
     marginal_factor: DMatrix<f64>,
-    draws: usize,
-    seed: u64,
 }
 
-impl ConditionalGaussian {
-    /// Fits the mean and the sample covariance (denominator n − 1) of
-    /// `background`; `draws` rows per coalition, an even number, and `seed`
-    /// fixes every draw.
-    pub fn try_new(
-        background: ArrayView2<'_, f64>,
-        draws: usize,
-        seed: u64,
-    ) -> Result<ConditionalGaussian> {
+impl GaussianFit {
+    /// Fits `background`, which needs at least two rows and only finite
+    /// values.
+    pub fn try_new(background: ArrayView2<'_, f64>) -> Result<GaussianFit> {
         require_rows(
             background,
             2,
             "CONDITIONAL_GAUSSIAN removal (to estimate a covariance)",
         )?;
         require_finite(background)?;
-        if draws < 2 || !draws.is_multiple_of(2) {
-            return Err(EngineError::new(
-                "draws",
-                format!(
-                    "must be an even number of at least 2 (draws come in antithetic pairs); got {draws}"
-                ),
-            ));
-        }
         let (rows, features) = background.dim();
         // Deviations from the first row keep a constant feature's mean and
         // variance exactly as they are (a plain sum / n may round).
@@ -74,82 +72,173 @@ impl ConditionalGaussian {
         }
         covariance /= (rows - 1) as f64;
         covariance.fill_upper_triangle_with_lower_triangle();
-        let ridge = RIDGE_FRACTION * (covariance.trace() / features as f64).max(f64::MIN_POSITIVE);
-        for j in 0..features {
-            covariance[(j, j)] += ridge;
-        }
-        let marginal_factor = square_root_factor(covariance.clone());
-        Ok(ConditionalGaussian {
+
+        let scale = DVector::from_fn(features, |j, _| covariance[(j, j)].sqrt());
+        let correlation = DMatrix::from_fn(features, features, |i, k| {
+            if i == k {
+                1.0 + RIDGE
+            } else if scale[i] > 0.0 && scale[k] > 0.0 {
+                covariance[(i, k)] / (scale[i] * scale[k])
+            } else {
+                0.0
+            }
+        });
+        let marginal_factor = square_root_factor(correlation.clone());
+        Ok(GaussianFit {
             mean,
-            covariance,
+            scale,
+            correlation,
             marginal_factor,
-            draws,
-            seed,
         })
     }
 
-    /// The fitted mean, one value per feature.
-    pub fn mean(&self) -> &[f64] {
-        self.mean.as_slice()
-    }
-
-    /// Features of the fitted distribution; the caller checks it against the
-    /// model's inputs.
-    pub fn features(&self) -> usize {
+    /// Features of the fitted distribution.
+    fn features(&self) -> usize {
         self.mean.len()
     }
 
-    /// Mean and a square-root factor `L` (`L Lᵀ` = covariance) of the missing
-    /// features given the present ones: `μ_M + Σ_MP Σ_PP⁻¹ (x_P − μ_P)` and
-    /// `Σ_MM − Σ_MP Σ_PP⁻¹ Σ_PM` ("Explaining individual predictions when
-    /// features are dependent: more accurate approximations to Shapley
-    /// values", Artificial Intelligence 298, 2021).
-    fn conditional(
+    /// `x` on the present features and `E[x_M | x_P]` on the missing ones,
+    /// by the same code the removal's draws are centred on. `x` and
+    /// `present` must have one entry per feature (it panics otherwise).
+    pub fn conditional_mean(&self, x: &[f64], present: &[bool]) -> Vec<f64> {
+        assert_eq!(x.len(), self.features(), "one value per feature");
+        assert_eq!(present.len(), self.features(), "one flag per feature");
+        let (present_at, missing_at) = split(present);
+        let mut full = x.to_vec();
+        if missing_at.is_empty() {
+            return full;
+        }
+        let (mean, _) = self.condition(|j| x[j], &present_at, &missing_at, false);
+        for (k, &j) in missing_at.iter().enumerate() {
+            full[j] = mean[k];
+        }
+        full
+    }
+
+    /// Mean of the missing features given the present ones and, when
+    /// `with_factor`, a square-root factor `L` of their conditional
+    /// covariance in standardised units (the draw is `mean + σ_M ∘ (L z)`):
+    /// `μ_M + Σ_MP Σ_PP⁻¹ (x_P − μ_P)` and `Σ_MM − Σ_MP Σ_PP⁻¹ Σ_PM`
+    /// ("Explaining individual predictions when features are dependent:
+    /// more accurate approximations to Shapley values", Artificial
+    /// Intelligence 298, 2021), evaluated as `Σ = D R D` with `D` the
+    /// standard deviations and `R` the correlations, so only `R_PP` is
+    /// factored.
+    fn condition(
         &self,
-        x: ArrayView1<'_, f64>,
+        x: impl Fn(usize) -> f64,
         present_at: &[usize],
         missing_at: &[usize],
-    ) -> (DVector<f64>, DMatrix<f64>) {
-        let mean_missing =
+        with_factor: bool,
+    ) -> (DVector<f64>, Option<DMatrix<f64>>) {
+        let mut mean =
             DVector::from_iterator(missing_at.len(), missing_at.iter().map(|&j| self.mean[j]));
         if present_at.is_empty() {
-            return (mean_missing, self.marginal_factor.clone());
+            // Every feature is missing: the unconditional distribution.
+            return (mean, with_factor.then(|| self.marginal_factor.clone()));
         }
-        let rows_present = self.covariance.select_rows(present_at);
+        let rows_present = self.correlation.select_rows(present_at);
         let present_present = rows_present.select_columns(present_at);
         let present_missing = rows_present.select_columns(missing_at);
-        let missing_missing = self
-            .covariance
-            .select_rows(missing_at)
-            .select_columns(missing_at);
-        let offset = DVector::from_iterator(
+        // A constant present feature is uncorrelated with everything, so its
+        // standardised offset is irrelevant: 0 rather than (x − μ) / 0.
+        let standardised = DVector::from_iterator(
             present_at.len(),
-            present_at.iter().map(|&j| x[j] - self.mean[j]),
+            present_at.iter().map(|&j| {
+                if self.scale[j] > 0.0 {
+                    (x(j) - self.mean[j]) / self.scale[j]
+                } else {
+                    0.0
+                }
+            }),
         );
-
-        let (gain, shift) = match Cholesky::new(present_present.clone()) {
-            Some(factor) => (factor.solve(&present_missing), factor.solve(&offset)),
-            None => {
-                let pseudo_inverse = symmetric_pseudo_inverse(present_present);
-                (
-                    &pseudo_inverse * &present_missing,
-                    &pseudo_inverse * &offset,
-                )
-            }
-        };
-        let mean = mean_missing + present_missing.tr_mul(&shift);
-        let mut covariance = missing_missing - present_missing.tr_mul(&gain);
-        let transposed = covariance.transpose();
-        covariance = (covariance + transposed) * 0.5;
-        (mean, square_root_factor(covariance))
+        let solver = Solver::new(present_present);
+        let shift = present_missing.tr_mul(&solver.solve(&standardised));
+        for (k, &j) in missing_at.iter().enumerate() {
+            mean[k] += self.scale[j] * shift[k];
+        }
+        let factor = with_factor.then(|| {
+            let gain = solver.solve_matrix(&present_missing);
+            let missing_missing = self
+                .correlation
+                .select_rows(missing_at)
+                .select_columns(missing_at);
+            let mut covariance = missing_missing - present_missing.tr_mul(&gain);
+            let transposed = covariance.transpose();
+            covariance = (covariance + transposed) * 0.5;
+            square_root_factor(covariance)
+        });
+        (mean, factor)
     }
 }
 
-impl Removal for ConditionalGaussian {
-    fn kind(&self) -> RemovalKind {
-        RemovalKind::ConditionalGaussian
+/// Positions of the present and of the missing features.
+fn split(present: &[bool]) -> (Vec<usize>, Vec<usize>) {
+    (0..present.len()).partition(|&j| present[j])
+}
+
+/// Solves with a symmetric positive semi-definite matrix: by Cholesky when
+/// it factors, else (a singular block the ridge could not rescue) by the
+/// pseudo-inverse.
+enum Solver {
+    Cholesky(Cholesky<f64, nalgebra::Dyn>),
+    PseudoInverse(DMatrix<f64>),
+}
+
+impl Solver {
+    fn new(matrix: DMatrix<f64>) -> Solver {
+        match Cholesky::new(matrix.clone()) {
+            Some(factor) => Solver::Cholesky(factor),
+            None => Solver::PseudoInverse(symmetric_pseudo_inverse(matrix)),
+        }
     }
 
+    fn solve(&self, vector: &DVector<f64>) -> DVector<f64> {
+        match self {
+            Solver::Cholesky(factor) => factor.solve(vector),
+            Solver::PseudoInverse(inverse) => inverse * vector,
+        }
+    }
+
+    fn solve_matrix(&self, matrix: &DMatrix<f64>) -> DMatrix<f64> {
+        match self {
+            Solver::Cholesky(factor) => factor.solve(matrix),
+            Solver::PseudoInverse(inverse) => inverse * matrix,
+        }
+    }
+}
+
+/// Draws from a [`GaussianFit`] for one request: `draws` rows per coalition
+/// (an even number, in antithetic pairs), all fixed by `seed`.
+///
+/// Requires a NaN-free instance (the front door checks it); a NaN on a
+/// present feature yields NaN rows, never a panic.
+#[derive(Debug, Clone)]
+pub struct ConditionalGaussian<'a> {
+    fit: &'a GaussianFit,
+    draws: usize,
+    seed: u64,
+}
+
+impl<'a> ConditionalGaussian<'a> {
+    pub fn try_new(
+        fit: &'a GaussianFit,
+        draws: usize,
+        seed: u64,
+    ) -> Result<ConditionalGaussian<'a>> {
+        if draws < 2 || !draws.is_multiple_of(2) {
+            return Err(EngineError::new(
+                "draws",
+                format!(
+                    "must be an even number of at least 2 (draws come in antithetic pairs); got {draws}"
+                ),
+            ));
+        }
+        Ok(ConditionalGaussian { fit, draws, seed })
+    }
+}
+
+impl Removal for ConditionalGaussian<'_> {
     fn rows_per_coalition(&self) -> usize {
         self.draws
     }
@@ -162,21 +251,22 @@ impl Removal for ConditionalGaussian {
         mut rows: ArrayViewMut2<'_, f64>,
         weights: &mut [f64],
     ) {
-        debug_assert_eq!(rows.ncols(), self.mean.len());
+        let fit = self.fit;
+        debug_assert_eq!(rows.ncols(), fit.features());
         weights.fill(1.0 / self.draws as f64);
         for mut row in rows.rows_mut() {
             for (slot, &own) in row.iter_mut().zip(x) {
                 *slot = own;
             }
         }
-        let missing_at: Vec<usize> = (0..present.len()).filter(|&j| !present[j]).collect();
+        let (present_at, missing_at) = split(present);
         if missing_at.is_empty() {
             return;
         }
-        let present_at: Vec<usize> = (0..present.len()).filter(|&j| present[j]).collect();
-        let (mean, factor) = self.conditional(x, &present_at, &missing_at);
+        let (mean, factor) = fit.condition(|j| x[j], &present_at, &missing_at, true);
+        let factor = factor.expect("asked for the factor");
 
-        // Antithetic pairs mean ± L z: the pair average is exactly the
+        // Antithetic pairs mean ± σ ∘ (L z): the pair average is exactly the
         // conditional mean, so a linear model needs no more than one pair.
         let mut rng = coalition_rng(self.seed, coalition);
         let mut normal = DVector::<f64>::zeros(missing_at.len());
@@ -188,8 +278,9 @@ impl Removal for ConditionalGaussian {
             }
             spread.gemv(1.0, &factor, &normal, 0.0);
             for (k, &j) in missing_at.iter().enumerate() {
-                plus[j] = mean[k] + spread[k];
-                minus[j] = mean[k] - spread[k];
+                let step = fit.scale[j] * spread[k];
+                plus[j] = mean[k] + step;
+                minus[j] = mean[k] - step;
             }
         }
     }
@@ -233,14 +324,16 @@ mod tests {
         // Column 1 equals column 0, so the covariance is singular. Given
         // feature 0, its exact copy has conditional mean x_0 and variance 0
         // (multivariate normal conditioning; any multivariate statistics
-        // text). The ridge only moves this by about 1e-12 relative.
+        // text). The ridge only moves this by about 1e-12 relative, in
+        // standard deviations of the feature.
         let background = array![
             [1.0, 1.0, 5.0],
             [2.0, 2.0, 3.0],
             [4.0, 4.0, 4.0],
             [0.5, 0.5, 1.0]
         ];
-        let removal = ConditionalGaussian::try_new(background.view(), 4, 3).unwrap();
+        let fit = GaussianFit::try_new(background.view()).unwrap();
+        let removal = ConditionalGaussian::try_new(&fit, 4, 3).unwrap();
         let x = array![3.0, 3.0, 2.0];
         let mut rows = Array2::zeros((4, 3));
         let mut weights = [0.0; 4];
@@ -261,9 +354,11 @@ mod tests {
     #[test]
     fn a_constant_feature_keeps_its_value_when_missing() {
         // A constant column has zero variance: every draw must equal it
-        // (up to the ridge's 1e-12 relative spread). Common practice, no source.
+        // exactly, however far the present feature is from its mean (a
+        // degenerate normal; common practice, no source).
         let background = array![[0.1, 1.0], [0.1, 2.0], [0.1, 4.0]];
-        let removal = ConditionalGaussian::try_new(background.view(), 2, 1).unwrap();
+        let fit = GaussianFit::try_new(background.view()).unwrap();
+        let removal = ConditionalGaussian::try_new(&fit, 2, 1).unwrap();
         let x = array![7.0, 7.0];
         let mut rows = Array2::zeros((2, 2));
         let mut weights = [0.0; 2];
@@ -275,14 +370,15 @@ mod tests {
             &mut weights,
         );
         for row in rows.rows() {
-            assert!((row[0] - 0.1).abs() < 1e-5, "{row}");
+            assert_eq!(row[0], 0.1, "{row}");
         }
     }
 
     #[test]
     fn a_nan_instance_gives_nan_rows_without_panicking() {
         let background = array![[1.0, 2.0], [2.0, 1.0], [3.0, 5.0]];
-        let removal = ConditionalGaussian::try_new(background.view(), 2, 1).unwrap();
+        let fit = GaussianFit::try_new(background.view()).unwrap();
+        let removal = ConditionalGaussian::try_new(&fit, 2, 1).unwrap();
         let x = array![f64::NAN, 1.0];
         let mut rows = Array2::zeros((2, 2));
         let mut weights = [0.0; 2];
@@ -319,15 +415,16 @@ mod tests {
     #[test]
     fn draws_must_be_even_and_the_background_large_enough() {
         let background = array![[1.0, 2.0], [2.0, 1.0]];
+        let fit = GaussianFit::try_new(background.view()).unwrap();
         for draws in [0, 1, 3] {
-            let err = ConditionalGaussian::try_new(background.view(), draws, 0).unwrap_err();
+            let err = ConditionalGaussian::try_new(&fit, draws, 0).unwrap_err();
             assert_eq!(err.field, "draws");
         }
         let one_row = array![[1.0, 2.0]];
-        let err = ConditionalGaussian::try_new(one_row.view(), 2, 0).unwrap_err();
+        let err = GaussianFit::try_new(one_row.view()).unwrap_err();
         assert_eq!(err.field, "background");
         let with_nan = array![[1.0, 2.0], [f64::NAN, 1.0]];
-        let err = ConditionalGaussian::try_new(with_nan.view(), 2, 0).unwrap_err();
+        let err = GaussianFit::try_new(with_nan.view()).unwrap_err();
         assert!(err.field == "background" && err.message.contains("column 0"));
     }
 }

@@ -6,8 +6,8 @@ use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
+use super::Removal;
 use super::marginal::require_rows;
-use super::{Removal, RemovalKind};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -35,19 +35,9 @@ impl<'a> Independent<'a> {
             seed,
         })
     }
-
-    /// Columns of the background; the caller checks it against the model's
-    /// inputs.
-    pub fn features(&self) -> usize {
-        self.background.ncols()
-    }
 }
 
 impl Removal for Independent<'_> {
-    fn kind(&self) -> RemovalKind {
-        RemovalKind::Independent
-    }
-
     fn rows_per_coalition(&self) -> usize {
         self.draws
     }

@@ -4,7 +4,7 @@
 
 use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 
-use super::{Removal, RemovalKind};
+use super::Removal;
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -20,19 +20,9 @@ impl<'a> Marginal<'a> {
         require_rows(background, 1, "MARGINAL removal")?;
         Ok(Marginal { background })
     }
-
-    /// Columns of the background; the caller checks it against the model's
-    /// inputs.
-    pub fn features(&self) -> usize {
-        self.background.ncols()
-    }
 }
 
 impl Removal for Marginal<'_> {
-    fn kind(&self) -> RemovalKind {
-        RemovalKind::Marginal
-    }
-
     fn rows_per_coalition(&self) -> usize {
         self.background.nrows()
     }

@@ -1,6 +1,8 @@
 //! How a model is evaluated with features missing: the model always needs a
 //! full row, so each removal kind fills the missing features of a coalition
-//! with its own rows and weights.
+//! with its own rows and weights. What depends only on the background
+//! ([`GaussianFit`], [`inverse_scales`], [`background_mean`]) is computed
+//! once per registration and borrowed by the per-request removals.
 
 mod fixed;
 mod gaussian;
@@ -8,11 +10,11 @@ mod independent;
 mod marginal;
 mod neighbors;
 
-pub use fixed::Fixed;
-pub use gaussian::ConditionalGaussian;
+pub use fixed::{Fixed, background_mean};
+pub use gaussian::{ConditionalGaussian, GaussianFit};
 pub use independent::Independent;
 pub use marginal::Marginal;
-pub use neighbors::ConditionalNeighbors;
+pub use neighbors::{ConditionalNeighbors, inverse_scales};
 
 use ndarray::{ArrayView1, ArrayViewMut2};
 
@@ -29,11 +31,9 @@ pub enum RemovalKind {
 }
 
 /// Fills the rows that stand for "the instance with only these features
-/// present". Implementations precompute what they need at construction and
-/// write straight into the caller's rows: no allocation per row.
+/// present". Implementations borrow what was derived from the background
+/// and write straight into the caller's rows: no allocation per row.
 pub trait Removal: Send + Sync {
-    fn kind(&self) -> RemovalKind;
-
     /// Rows (and weights) one coalition costs.
     fn rows_per_coalition(&self) -> usize;
 

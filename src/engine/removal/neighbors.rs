@@ -1,11 +1,12 @@
 //! CONDITIONAL_NEIGHBORS removal: background rows stand in for the
 //! conditional distribution, weighted by how close each is to the instance on
-//! the present features (a Gaussian kernel on a standardised distance).
+//! the present features (a Gaussian kernel on a standardised distance). The
+//! per-feature scales are computed once per background ([`inverse_scales`]).
 
 use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 
+use super::Removal;
 use super::marginal::{fill_from_rows, require_finite, require_rows};
-use super::{Removal, RemovalKind};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -25,53 +26,64 @@ use crate::engine::error::{EngineError, Result};
 pub struct ConditionalNeighbors<'a> {
     background: ArrayView2<'a, f64>,
     /// `1 / σ_j`, or 0 for a constant feature.
-    inverse_scale: Vec<f64>,
+    inverse_scales: &'a [f64],
     width: f64,
 }
 
 impl<'a> ConditionalNeighbors<'a> {
+    /// `inverse_scales` must come from [`inverse_scales`] on this same
+    /// `background`: that is where the background is checked to be finite,
+    /// once, rather than on every request.
     pub fn try_new(
         background: ArrayView2<'a, f64>,
+        inverse_scales: &'a [f64],
         width: f64,
     ) -> Result<ConditionalNeighbors<'a>> {
         require_rows(background, 1, "CONDITIONAL_NEIGHBORS removal")?;
-        require_finite(background)?;
+        if inverse_scales.len() != background.ncols() {
+            return Err(EngineError::new(
+                "background",
+                format!(
+                    "has {} columns but {} feature scales were given; compute them from this background",
+                    background.ncols(),
+                    inverse_scales.len()
+                ),
+            ));
+        }
         if !(width.is_finite() && width > 0.0) {
             return Err(EngineError::new(
                 "width",
                 format!("must be a finite number greater than 0; got {width}"),
             ));
         }
-        let rows = background.nrows() as f64;
-        let inverse_scale = background
-            .columns()
-            .into_iter()
-            .map(|column| {
-                let mean = column.sum() / rows;
-                let variance = column.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / rows;
-                let std = variance.sqrt();
-                if std > 0.0 { 1.0 / std } else { 0.0 }
-            })
-            .collect();
         Ok(ConditionalNeighbors {
             background,
-            inverse_scale,
+            inverse_scales,
             width,
         })
     }
+}
 
-    /// Columns of the background; the caller checks it against the model's
-    /// inputs.
-    pub fn features(&self) -> usize {
-        self.background.ncols()
-    }
+/// `1 / σ_j` for each background column (σ the population std), or 0 for a
+/// constant column, which then adds nothing to the distance. Refuses a
+/// background without rows or with a missing or infinite value.
+pub fn inverse_scales(background: ArrayView2<'_, f64>) -> Result<Vec<f64>> {
+    require_rows(background, 1, "CONDITIONAL_NEIGHBORS removal")?;
+    require_finite(background)?;
+    let rows = background.nrows() as f64;
+    Ok(background
+        .columns()
+        .into_iter()
+        .map(|column| {
+            let mean = column.sum() / rows;
+            let variance = column.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / rows;
+            let std = variance.sqrt();
+            if std > 0.0 { 1.0 / std } else { 0.0 }
+        })
+        .collect())
 }
 
 impl Removal for ConditionalNeighbors<'_> {
-    fn kind(&self) -> RemovalKind {
-        RemovalKind::ConditionalNeighbors
-    }
-
     fn rows_per_coalition(&self) -> usize {
         self.background.nrows()
     }
@@ -92,7 +104,7 @@ impl Removal for ConditionalNeighbors<'_> {
             for (((&own, &other), &scale), &keep) in x
                 .iter()
                 .zip(reference)
-                .zip(&self.inverse_scale)
+                .zip(self.inverse_scales)
                 .zip(present)
             {
                 let term = ((own - other) * scale).powi(2);
@@ -129,7 +141,8 @@ mod tests {
 
     /// Weights for `x` with only feature 0 present.
     fn weights_for(background: &Array2<f64>, x: f64, width: f64) -> Vec<f64> {
-        let removal = ConditionalNeighbors::try_new(background.view(), width).unwrap();
+        let scales = inverse_scales(background.view()).unwrap();
+        let removal = ConditionalNeighbors::try_new(background.view(), &scales, width).unwrap();
         let instance = array![x, 0.0];
         let mut rows = Array2::zeros(background.dim());
         let mut weights = vec![0.0; background.nrows()];
@@ -170,8 +183,9 @@ mod tests {
     #[test]
     fn width_must_be_positive_and_finite() {
         let background = array![[1.0]];
+        let scales = inverse_scales(background.view()).unwrap();
         for width in [0.0, -1.0, f64::NAN, f64::INFINITY] {
-            let err = ConditionalNeighbors::try_new(background.view(), width).unwrap_err();
+            let err = ConditionalNeighbors::try_new(background.view(), &scales, width).unwrap_err();
             assert_eq!(err.field, "width");
         }
     }
