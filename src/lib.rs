@@ -8,7 +8,9 @@
 //!   summaries, estimators and the planner. Pure numeric code.
 //! - [`model`]: the [`model::Model`] trait and the model kinds (linear, tree
 //!   ensembles).
-//! - [`demo`]: the fictional housing co-operative: synthetic applicants, two trained models.
+//! - `demo` (feature `demo`, on by default): the fictional housing
+//!   co-operative: synthetic applicants and the two models trained on them;
+//!   not part of the library proper.
 //! - [`client`]: the thin gRPC client behind `apportion models` and `explain`.
 //! - [`reasons`]: attributions → principal reason statements.
 //! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
@@ -17,6 +19,7 @@
 #![deny(unsafe_code)]
 
 pub mod client;
+#[cfg(feature = "demo")]
 pub mod demo;
 pub mod engine;
 pub mod model;

@@ -4,12 +4,13 @@
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::process::ExitCode;
-use std::time::Instant;
 
+use apportion::client;
+#[cfg(feature = "demo")]
+use apportion::demo;
 use apportion::service::proto;
 use apportion::service::{self, Config, ConfigLayer, State};
 use apportion::telemetry::{self, LogFormat};
-use apportion::{client, demo};
 use clap::{Parser, Subcommand};
 
 #[derive(Parser)]
@@ -26,6 +27,7 @@ struct Cli {
 #[derive(Subcommand)]
 enum Command {
     /// Train the demo screening model on synthetic applicants and explain a few of them.
+    #[cfg(feature = "demo")]
     Demo {
         /// Seed of the synthetic applicants and of the sampled estimators.
         #[arg(long, default_value_t = 7)]
@@ -155,6 +157,7 @@ impl ServeArgs {
 
 fn main() -> ExitCode {
     let result = match Cli::parse().command {
+        #[cfg(feature = "demo")]
         Command::Demo { seed, exit } => run_demo(seed, exit),
         Command::Serve(args) => serve(args),
         Command::Models { address } => run_client(client::models(&address)),
@@ -284,8 +287,9 @@ async fn stop_requested() {
 
 /// Starts the service on loopback with a fresh registry, registers the demo
 /// models and explains the applicants over real gRPC, then keeps serving.
+#[cfg(feature = "demo")]
 fn run_demo(seed: u64, exit: bool) -> Result<(), Box<dyn std::error::Error>> {
-    let started = Instant::now();
+    let started = std::time::Instant::now();
     let scenario = demo::scenario(seed)?;
     println!(
         "Larchmont Housing Co-operative — demo applicant screening (fictional co-operative, synthetic applicants)"

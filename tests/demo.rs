@@ -2,6 +2,8 @@
 //! service on loopback, registers both demo models over gRPC and explains
 //! every applicant. `--exit` stops it after the tables.
 
+#![cfg(feature = "demo")]
+
 use std::process::Command;
 
 #[test]

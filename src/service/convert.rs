@@ -30,17 +30,21 @@ fn known<E: TryFrom<i32>>(field: &str, value: i32) -> Result<E> {
     })
 }
 
-fn link_from(value: i32) -> Result<LinkSpec> {
-    Ok(match known::<proto::Link>("link", value)? {
-        proto::Link::Identity => LinkSpec::Identity,
-        proto::Link::Logistic => LinkSpec::Logistic,
-    })
+impl From<proto::Link> for LinkSpec {
+    fn from(link: proto::Link) -> LinkSpec {
+        match link {
+            proto::Link::Identity => LinkSpec::Identity,
+            proto::Link::Logistic => LinkSpec::Logistic,
+        }
+    }
 }
 
-fn link_to(link: Link) -> proto::Link {
-    match link {
-        Link::Identity => proto::Link::Identity,
-        Link::Logistic => proto::Link::Logistic,
+impl From<Link> for proto::Link {
+    fn from(link: Link) -> proto::Link {
+        match link {
+            Link::Identity => proto::Link::Identity,
+            Link::Logistic => proto::Link::Logistic,
+        }
     }
 }
 
@@ -127,7 +131,7 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
     type Error = ServiceError;
 
     fn try_from(request: proto::RegisterModelRequest) -> Result<ModelSpec> {
-        let link = link_from(request.link)?;
+        let link = LinkSpec::from(known::<proto::Link>("link", request.link)?);
         let model = match request.model {
             Some(proto::register_model_request::Model::Linear(linear)) => ModelBody::Linear {
                 weights: linear.weights,
@@ -212,7 +216,7 @@ impl From<&ModelInfo> for proto::ModelInfo {
             features: info.features.iter().map(proto::Feature::from).collect(),
             background_rows: u32::try_from(info.background_rows).unwrap_or(u32::MAX),
             model_kind: info.model_kind.to_string(),
-            link: link_to(info.link) as i32,
+            link: proto::Link::from(info.link) as i32,
             row_cost_ns: info.row_cost_ns,
             registered_unix_ms: i64::try_from(info.registered_unix_ms).unwrap_or(i64::MAX),
             checksum: info.checksum.clone(),
@@ -224,28 +228,33 @@ impl From<&ModelInfo> for proto::ModelInfo {
     }
 }
 
-pub fn estimator_from(value: i32) -> Result<Option<EstimatorKind>> {
-    Ok(match known::<proto::Estimator>("estimator", value)? {
-        proto::Estimator::Auto => None,
-        proto::Estimator::Exact => Some(EstimatorKind::Exact),
-        proto::Estimator::Permutation => Some(EstimatorKind::Permutation),
-        proto::Estimator::PairedRegression => Some(EstimatorKind::PairedRegression),
-        proto::Estimator::LeverageRegression => Some(EstimatorKind::LeverageRegression),
-        proto::Estimator::Msr => Some(EstimatorKind::MaximumSampleReuse),
-        proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
-        proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
-    })
+/// AUTO is no estimator: the planner chooses.
+impl From<proto::Estimator> for Option<EstimatorKind> {
+    fn from(estimator: proto::Estimator) -> Option<EstimatorKind> {
+        match estimator {
+            proto::Estimator::Auto => None,
+            proto::Estimator::Exact => Some(EstimatorKind::Exact),
+            proto::Estimator::Permutation => Some(EstimatorKind::Permutation),
+            proto::Estimator::PairedRegression => Some(EstimatorKind::PairedRegression),
+            proto::Estimator::LeverageRegression => Some(EstimatorKind::LeverageRegression),
+            proto::Estimator::Msr => Some(EstimatorKind::MaximumSampleReuse),
+            proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
+            proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
+        }
+    }
 }
 
-pub fn estimator_to(kind: EstimatorKind) -> proto::Estimator {
-    match kind {
-        EstimatorKind::Exact => proto::Estimator::Exact,
-        EstimatorKind::Permutation => proto::Estimator::Permutation,
-        EstimatorKind::PairedRegression => proto::Estimator::PairedRegression,
-        EstimatorKind::LeverageRegression => proto::Estimator::LeverageRegression,
-        EstimatorKind::MaximumSampleReuse => proto::Estimator::Msr,
-        EstimatorKind::TreeExact => proto::Estimator::TreeExact,
-        EstimatorKind::LinearExact => proto::Estimator::LinearExact,
+impl From<EstimatorKind> for proto::Estimator {
+    fn from(kind: EstimatorKind) -> proto::Estimator {
+        match kind {
+            EstimatorKind::Exact => proto::Estimator::Exact,
+            EstimatorKind::Permutation => proto::Estimator::Permutation,
+            EstimatorKind::PairedRegression => proto::Estimator::PairedRegression,
+            EstimatorKind::LeverageRegression => proto::Estimator::LeverageRegression,
+            EstimatorKind::MaximumSampleReuse => proto::Estimator::Msr,
+            EstimatorKind::TreeExact => proto::Estimator::TreeExact,
+            EstimatorKind::LinearExact => proto::Estimator::LinearExact,
+        }
     }
 }
 
@@ -431,7 +440,7 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
     engine.removal = removal_from(request)?;
     engine.target = target_from(request)?;
     engine.summary = summary_from(request)?;
-    engine.estimator = estimator_from(request.estimator)?;
+    engine.estimator = known::<proto::Estimator>("estimator", request.estimator)?.into();
     engine.budget = budget;
     engine.max_evaluations = if request.max_evaluations == 0 {
         DEFAULT_MAX_EVALUATIONS
@@ -506,7 +515,7 @@ pub fn explanation(
         value_full: estimate.value_full,
         value_empty: estimate.value_empty,
         attributions,
-        estimator_used: estimator_to(answer.estimator) as i32,
+        estimator_used: proto::Estimator::from(answer.estimator) as i32,
         coalitions_evaluated: answer.coalitions_evaluated,
         model_rows_evaluated: answer.model_rows_evaluated,
         converged: estimate.converged,
