@@ -11,8 +11,12 @@
 //! Contributions to the Theory of Games II, 1953) and the raw Banzhaf value
 //! ("Weighted voting doesn't work: a mathematical analysis", Rutgers Law
 //! Review 19, 1965).
+//!
+//! The compiled form (`CompiledTrees`, background summarised per leaf by
+//! follow pattern) is held to the same brute force, and to the per-row pass
+//! on ensembles too large to enumerate.
 
-use apportion::engine::estimate::tree::explain;
+use apportion::engine::estimate::tree::{CompiledTrees, explain};
 use apportion::engine::{Players, Summary};
 use apportion::model::{Link, Model, Tree, TreeEnsemble};
 use ndarray::Array2;
@@ -270,4 +274,308 @@ fn wrong_summary_and_instance_length_name_their_field() {
     let short = &instance[..FEATURES - 1];
     let err = explain(&model, &players, short, references.view(), Summary::Shapley).unwrap_err();
     assert_eq!(err.field, "instance");
+}
+
+/// A tree with no split: it adds a constant that no player is credited for.
+fn single_leaf(value: f64, features: usize) -> Tree {
+    Tree::try_new(
+        vec![-1],
+        vec![0.0],
+        vec![-1],
+        vec![-1],
+        vec![value],
+        vec![],
+        features,
+    )
+    .expect("a lone leaf is a tree")
+}
+
+/// `random_ensemble` plus a single-leaf tree.
+fn random_ensemble_with_stump(rng: &mut ChaCha8Rng) -> TreeEnsemble {
+    let model = random_ensemble(rng);
+    let mut trees = model.trees().to_vec();
+    trees.push(single_leaf(0.75, FEATURES));
+    TreeEnsemble::try_new(trees, model.base_score(), Link::Identity, FEATURES)
+        .expect("valid ensemble")
+}
+
+/// The three ways of compiling: every tree in pattern form, the per-tree
+/// choice from costs, and a memory limit of 0 (every tree per row).
+/// `describable`: trees whose leaves have at most 64 path players.
+fn compiled_forms(
+    model: &TreeEnsemble,
+    players: &Players,
+    references: &Array2<f64>,
+    describable: usize,
+) -> Vec<(&'static str, CompiledTrees)> {
+    let patterns = CompiledTrees::compile_all_patterns(model, players, references.view())
+        .expect("valid background");
+    assert_eq!(patterns.pattern_trees(), describable);
+    let rows = CompiledTrees::compile(model, players, references.view(), 0).expect("valid");
+    assert_eq!((rows.pattern_trees(), rows.memory_bytes()), (0, 0));
+    let chosen =
+        CompiledTrees::compile(model, players, references.view(), usize::MAX).expect("valid");
+    vec![
+        ("patterns", patterns),
+        ("chosen", chosen),
+        ("per-row", rows),
+    ]
+}
+
+#[test]
+fn compiled_tree_values_equal_brute_force_enumeration() {
+    // Background sizes from one row to 2,000, NaN in instance and
+    // background, repeated and contradictory splits on a path (random
+    // thresholds on reused features), a single-leaf tree, groups.
+    for (seed, rows) in [(20, 1), (21, 2), (22, 9), (23, 60), (24, 300), (25, 2000)] {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let model = random_ensemble_with_stump(&mut rng);
+        let mut instance = random_row(&mut rng, 0.2);
+        instance[seed as usize % FEATURES] = f64::NAN;
+        let references = random_references(&mut rng, rows);
+        for players in [Players::singletons(FEATURES), grouped_players()] {
+            let values = coalition_values(&model, &players, &instance, &references);
+            let p = players.len();
+            for (form, compiled) in
+                compiled_forms(&model, &players, &references, model.trees().len())
+            {
+                for (summary, expected) in [
+                    (Summary::Shapley, brute_shapley(&values, p)),
+                    (Summary::Banzhaf, brute_banzhaf(&values, p)),
+                ] {
+                    let what = format!(
+                        "seed {seed}, {rows} rows, {p} players, {form}, {}",
+                        summary.name()
+                    );
+                    let estimate = compiled
+                        .explain(&model, &players, references.view(), &instance, summary)
+                        .expect("valid request");
+                    assert_close(&estimate.values, &expected, 1e-9, &what);
+                    assert!((estimate.value_full - values[values.len() - 1]).abs() <= 1e-9);
+                    assert!((estimate.value_empty - values[0]).abs() <= 1e-9);
+                    assert!(estimate.std_errors.iter().all(|s| *s == 0.0) && estimate.converged);
+                }
+            }
+        }
+    }
+}
+
+/// Node arrays of a complete tree of `depth` on `features` features, with
+/// thresholds around the middle of the data and random missing directions.
+fn complete_tree(rng: &mut ChaCha8Rng, depth: usize, features: usize) -> Tree {
+    fn grow_complete(
+        rng: &mut ChaCha8Rng,
+        nodes: &mut Nodes,
+        depth: usize,
+        features: usize,
+    ) -> i32 {
+        let index = nodes.left.len();
+        nodes.feature.push(-1);
+        nodes.threshold.push(0.0);
+        nodes.left.push(-1);
+        nodes.right.push(-1);
+        nodes.value.push(rng.random_range(-2.0..2.0));
+        nodes.missing_left.push(rng.random_bool(0.5));
+        if depth > 0 {
+            nodes.feature[index] = rng.random_range(0..features as i32);
+            nodes.threshold[index] = rng.random_range(0.2..0.8);
+            let left = grow_complete(rng, nodes, depth - 1, features);
+            let right = grow_complete(rng, nodes, depth - 1, features);
+            nodes.left[index] = left;
+            nodes.right[index] = right;
+        }
+        index as i32
+    }
+    let mut nodes = Nodes::default();
+    grow_complete(rng, &mut nodes, depth, features);
+    Tree::try_new(
+        nodes.feature,
+        nodes.threshold,
+        nodes.left,
+        nodes.right,
+        nodes.value,
+        nodes.missing_left,
+        features,
+    )
+    .expect("generated trees are well formed")
+}
+
+/// A chain: every inner node has one leaf child, and the path to the
+/// deepest leaf splits on `length` distinct features (more than a u64 mask
+/// holds once `length` passes 64).
+fn chain_tree(rng: &mut ChaCha8Rng, length: usize, features: usize) -> Tree {
+    let mut order: Vec<i32> = (0..features as i32).collect();
+    for i in (1..order.len()).rev() {
+        order.swap(i, rng.random_range(0..=i));
+    }
+    let mut nodes = Nodes::default();
+    let push = |nodes: &mut Nodes, feature: i32, left: i32, right: i32, rng: &mut ChaCha8Rng| {
+        nodes.feature.push(feature);
+        nodes.threshold.push(rng.random_range(0.05..0.95));
+        nodes.left.push(left);
+        nodes.right.push(right);
+        nodes.value.push(rng.random_range(-2.0..2.0));
+        nodes.missing_left.push(rng.random_bool(0.5));
+    };
+    // Inner node i sits at 2i, its leaf child at 2i + 1, the next inner
+    // node at 2i + 2; the chain continues on a random side.
+    for step in 0..length {
+        let (next, leaf) = (2 * step as i32 + 2, 2 * step as i32 + 1);
+        let (left, right) = if rng.random_bool(0.5) {
+            (next, leaf)
+        } else {
+            (leaf, next)
+        };
+        push(&mut nodes, order[step % features], left, right, rng);
+        push(&mut nodes, -1, -1, -1, rng);
+    }
+    push(&mut nodes, -1, -1, -1, rng);
+    Tree::try_new(
+        nodes.feature,
+        nodes.threshold,
+        nodes.left,
+        nodes.right,
+        nodes.value,
+        nodes.missing_left,
+        features,
+    )
+    .expect("chains are well formed")
+}
+
+/// Correlated rows: a shared factor plus noise, in [0, 1) mostly, some NaN.
+fn correlated_rows(rng: &mut ChaCha8Rng, rows: usize, features: usize) -> Array2<f64> {
+    let mut out = Array2::zeros((rows, features));
+    for mut row in out.rows_mut() {
+        let shared: f64 = rng.random();
+        for slot in row.iter_mut() {
+            *slot = if rng.random_bool(0.05) {
+                f64::NAN
+            } else {
+                0.6 * shared + 0.4 * rng.random::<f64>()
+            };
+        }
+    }
+    out
+}
+
+#[test]
+fn compiled_trees_equal_the_per_row_pass_on_larger_ensembles() {
+    // Too many players to enumerate: the reference is the per-row pass,
+    // itself held to brute force above. Complete trees to depth 8 (dense
+    // and sparse leaves), chains of 20 distinct features (leaves counted by
+    // sorting) and of 70 (beyond a u64 mask: per-row whatever is asked).
+    let features = 80;
+    for (seed, rows) in [(30, 5), (31, 150), (32, 700)] {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let mut trees: Vec<Tree> = (0..24)
+            .map(|i| complete_tree(&mut rng, 2 + i % 7, 30))
+            .collect();
+        trees.push(chain_tree(&mut rng, 20, features));
+        trees.push(chain_tree(&mut rng, 70, features));
+        trees.push(single_leaf(-0.5, features));
+        let model = TreeEnsemble::try_new(trees, 0.1, Link::Identity, features).expect("valid");
+        let references = correlated_rows(&mut rng, rows, features);
+        let instance = correlated_rows(&mut rng, 1, features).row(0).to_vec();
+        let names: Vec<String> = (0..features).map(|j| format!("f{j}")).collect();
+        let groups: Vec<String> = (0..features)
+            .map(|j| {
+                if j % 2 == 0 && j < 40 {
+                    "g".to_string()
+                } else {
+                    String::new()
+                }
+            })
+            .collect();
+        let grouped = Players::try_new(&names, &groups).expect("valid grouping");
+        // The 70-feature chain has more path players than a u64 mask holds,
+        // unless the group (20 features, at least 10 on any chain of 70 of
+        // the 80) folds them into at most 61.
+        let trees = model.trees().len();
+        for (players, describable) in [(Players::singletons(features), trees - 1), (grouped, trees)]
+        {
+            let forms = compiled_forms(&model, &players, &references, describable);
+            let limit = CompiledTrees::compile(
+                &model,
+                &players,
+                references.view(),
+                forms[0].1.memory_bytes() / 2,
+            )
+            .expect("valid");
+            assert!(limit.memory_bytes() <= forms[0].1.memory_bytes() / 2);
+            assert!(limit.pattern_trees() < forms[0].1.pattern_trees());
+            for summary in [Summary::Shapley, Summary::Banzhaf] {
+                let expected = explain(&model, &players, &instance, references.view(), summary)
+                    .expect("valid request");
+                for (form, compiled) in forms.iter().chain([&("half memory", limit.clone())]) {
+                    let what = format!("seed {seed}, {rows} rows, {form}, {}", summary.name());
+                    let estimate = compiled
+                        .explain(&model, &players, references.view(), &instance, summary)
+                        .expect("valid request");
+                    assert_close(&estimate.values, &expected.values, 1e-12, &what);
+                    assert_eq!(estimate.value_full, expected.value_full, "{what}");
+                    assert!((estimate.value_empty - expected.value_empty).abs() <= 1e-12);
+                }
+            }
+        }
+    }
+}
+
+#[test]
+fn a_rebuilt_compilation_answers_bit_for_bit_the_same() {
+    // The registry recompiles after a restart; answers must not move.
+    let mut rng = ChaCha8Rng::seed_from_u64(40);
+    let model = random_ensemble_with_stump(&mut rng);
+    let references = random_references(&mut rng, 400);
+    let instance = random_row(&mut rng, 0.2);
+    let players = grouped_players();
+    let answers: Vec<Vec<f64>> = (0..2)
+        .map(|_| {
+            let compiled = CompiledTrees::compile(&model, &players, references.view(), usize::MAX)
+                .expect("valid");
+            compiled
+                .explain(
+                    &model,
+                    &players,
+                    references.view(),
+                    &instance,
+                    Summary::Shapley,
+                )
+                .expect("valid request")
+                .values
+        })
+        .collect();
+    assert_eq!(answers[0], answers[1]);
+}
+
+#[test]
+fn a_compilation_refuses_another_background_and_bad_requests() {
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    let model = random_ensemble(&mut rng);
+    let players = Players::singletons(FEATURES);
+    let references = random_references(&mut rng, 10);
+    let instance = random_row(&mut rng, 0.0);
+    let compiled =
+        CompiledTrees::compile(&model, &players, references.view(), usize::MAX).expect("valid");
+    let other = random_references(&mut rng, 11);
+    let explain_with = |background: &Array2<f64>, instance: &[f64], summary| {
+        compiled
+            .explain(&model, &players, background.view(), instance, summary)
+            .unwrap_err()
+            .field
+    };
+    assert_eq!(
+        explain_with(&other, &instance, Summary::Shapley),
+        "background"
+    );
+    assert_eq!(
+        explain_with(&references, &instance[1..], Summary::Shapley),
+        "instance"
+    );
+    assert_eq!(
+        explain_with(&references, &instance, Summary::LeaveOneOut),
+        "summary"
+    );
+    let empty = Array2::<f64>::zeros((0, FEATURES));
+    let err = CompiledTrees::compile(&model, &players, empty.view(), usize::MAX).unwrap_err();
+    assert_eq!(err.field, "background");
 }

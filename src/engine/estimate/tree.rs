@@ -18,6 +18,10 @@ use crate::engine::players::Players;
 use crate::engine::summary::Summary;
 use crate::engine::trees::{Tree, TreeEnsemble};
 
+mod compiled;
+
+pub use compiled::{CompiledTrees, TreeWork};
+
 /// Exact Shapley or Banzhaf values of the OUTPUT (raw margin) game of
 /// `ensemble` at `instance`, under marginal removal over `references`
 /// (background rows) or fixed removal (pass one row).
@@ -33,15 +37,72 @@ pub fn explain(
     references: ArrayView2<'_, f64>,
     summary: Summary,
 ) -> Result<Estimate> {
-    if !matches!(summary, Summary::Shapley | Summary::Banzhaf) {
+    check_request(ensemble, players, instance, references, summary)?;
+    let shares = Shares::new(summary, players.len());
+    let mut walk = Walk::new(players.len());
+    for reference in references.rows() {
+        for tree in ensemble.trees() {
+            walk.add_tree(tree, players, instance, reference, &shares);
+        }
+    }
+    let rows = references.nrows() as f64;
+    let values = walk.values.iter().map(|total| total / rows).collect();
+
+    let mut full = [0.0];
+    ensemble.predict(aview1(instance).insert_axis(Axis(0)), &mut full);
+    let mut reference_outputs = vec![0.0; references.nrows()];
+    ensemble.predict(references, &mut reference_outputs);
+    let value_empty = reference_outputs.iter().sum::<f64>() / rows;
+    Ok(Estimate::exact(values, full[0], value_empty))
+}
+
+/// The checks every exact tree explanation makes before any work.
+fn check_request(
+    ensemble: &TreeEnsemble,
+    players: &Players,
+    instance: &[f64],
+    references: ArrayView2<'_, f64>,
+    summary: Summary,
+) -> Result<()> {
+    check_summary(summary)?;
+    check_background(ensemble, players, references)?;
+    check_instance(ensemble, instance)
+}
+
+fn check_summary(summary: Summary) -> Result<()> {
+    if matches!(summary, Summary::Shapley | Summary::Banzhaf) {
+        return Ok(());
+    }
+    Err(EngineError::new(
+        "summary",
+        format!(
+            "the exact tree algorithm computes SHAPLEY or BANZHAF, not {}",
+            summary.name()
+        ),
+    ))
+}
+
+fn check_instance(ensemble: &TreeEnsemble, instance: &[f64]) -> Result<()> {
+    let inputs = ensemble.inputs();
+    if instance.len() != inputs {
         return Err(EngineError::new(
-            "summary",
+            "instance",
             format!(
-                "the exact tree algorithm computes SHAPLEY or BANZHAF, not {}",
-                summary.name()
+                "has {} values; the model has {inputs} inputs",
+                instance.len()
             ),
         ));
     }
+    Ok(())
+}
+
+/// Players and background rows must match the model's inputs, and there
+/// must be at least one row to average over.
+fn check_background(
+    ensemble: &TreeEnsemble,
+    players: &Players,
+    references: ArrayView2<'_, f64>,
+) -> Result<()> {
     let inputs = ensemble.inputs();
     if players.features() != inputs {
         return Err(EngineError::new(
@@ -49,15 +110,6 @@ pub fn explain(
             format!(
                 "{} features are registered; the model has {inputs} inputs",
                 players.features()
-            ),
-        ));
-    }
-    if instance.len() != inputs {
-        return Err(EngineError::new(
-            "instance",
-            format!(
-                "has {} values; the model has {inputs} inputs",
-                instance.len()
             ),
         ));
     }
@@ -76,23 +128,7 @@ pub fn explain(
             "at least one reference row is required",
         ));
     }
-
-    let shares = Shares::new(summary, players.len());
-    let mut walk = Walk::new(players.len());
-    for reference in references.rows() {
-        for tree in ensemble.trees() {
-            walk.add_tree(tree, players, instance, reference, &shares);
-        }
-    }
-    let rows = references.nrows() as f64;
-    let values = walk.values.iter().map(|total| total / rows).collect();
-
-    let mut full = [0.0];
-    ensemble.predict(aview1(instance).insert_axis(Axis(0)), &mut full);
-    let mut reference_outputs = vec![0.0; references.nrows()];
-    ensemble.predict(references, &mut reference_outputs);
-    let value_empty = reference_outputs.iter().sum::<f64>() / rows;
-    Ok(Estimate::exact(values, full[0], value_empty))
+    Ok(())
 }
 
 /// What one player of the leaf game `v · 1[A ⊆ S, S ∩ B = ∅]` receives, per
@@ -169,6 +205,9 @@ struct Walk {
     stack: Vec<Step>,
     /// Attribution totals over reference rows, one per player.
     values: Vec<f64>,
+    /// Nodes entered so far: the unit the per-row pass's cost is counted
+    /// in when trees are compiled.
+    entered: usize,
 }
 
 impl Walk {
@@ -179,6 +218,7 @@ impl Walk {
             split_players: Vec::with_capacity(players),
             stack: Vec::with_capacity(64),
             values: vec![0.0; players],
+            entered: 0,
         }
     }
 
@@ -197,6 +237,7 @@ impl Walk {
             split_players,
             stack,
             values,
+            entered,
         } = self;
         // |A| (only the instance follows) and |B| (only the reference does).
         let (mut only_instance, mut only_reference) = (0usize, 0usize);
@@ -220,6 +261,7 @@ impl Walk {
                     }
                 }
                 Step::Enter { node, miss } => {
+                    *entered += 1;
                     if let Some((player, side)) = miss {
                         let (misses, other_misses, one_sided) = match side {
                             Side::Instance => (

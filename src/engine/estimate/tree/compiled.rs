@@ -1,0 +1,744 @@
+//! A tree ensemble compiled against its background for marginal removal.
+//! A background row enters a leaf's contribution only through which of the
+//! leaf's path players it follows, so each leaf keeps the count of rows per
+//! such follow pattern, and an explanation costs trees × leaves × patterns
+//! whatever the number of rows. Trees where the per-row pass is cheaper, or
+//! that do not fit the memory limit, keep the per-row pass.
+//!
+//! The leaf rule is the one in the parent module ("From local explanations to
+//! global understanding with explainable AI for trees", Nature Machine
+//! Intelligence 2(1), 2020): with X the path players the instance follows and
+//! Z those a background row follows, the row counts iff X ∪ Z is every path
+//! player; then A = X \ Z and B = the path players outside X.
+
+use ndarray::{ArrayView2, Axis, aview1};
+
+use super::{Shares, Walk, check_background, check_instance, check_summary};
+use crate::engine::error::{EngineError, Result};
+use crate::engine::estimate::Estimate;
+use crate::engine::players::Players;
+use crate::engine::summary::Summary;
+use crate::model::{Model, Tree, TreeEnsemble};
+
+// Unit costs in ns, fitted by least squares to explanation times of the
+// all-per-row and all-pattern forms (depths 4, 6 and 8, 10 to 10,000 rows)
+// with `cargo bench --no-default-features --bench trees` on the machine the
+// bench's first line names. Only their ratios steer the per-tree choice;
+// their scale is what `predicted_ns` reports.
+/// Per (tree, background row) of the per-row pass.
+const ROW_PASS_NS: f64 = 20.0;
+/// Per node the per-row pass enters.
+const ROW_NODE_NS: f64 = 6.0;
+/// Per node of the instance's pass over a pattern tree.
+const PATTERN_NODE_NS: f64 = 2.0;
+/// Per leaf of a pattern tree.
+const PATTERN_LEAF_NS: f64 = 10.0;
+/// Per pattern scanned or follow mask enumerated at a leaf.
+const PATTERN_UNIT_NS: f64 = 2.0;
+
+/// Reference rows sampled (evenly spaced) to count the nodes a per-row pass
+/// enters; bounds the compile time that estimate takes.
+const SAMPLE_ROWS: usize = 32;
+/// Follow patterns are u64 masks over a leaf's path players.
+const MAX_SLOTS: usize = 64;
+/// Leaves with at most this many path players may keep a dense table of
+/// counts indexed by pattern.
+const DENSE_MAX_SLOTS: usize = 12;
+/// Counting with one dense table per leaf while the tables of a tree total
+/// at most this many entries; beyond, leaf by leaf with a sort.
+const SCRATCH_MAX_ENTRIES: usize = 1 << 14;
+/// Bytes per stored pattern in the sparse form (u64 mask + u32 count) and
+/// per entry of a dense table.
+const SPARSE_ENTRY_BYTES: usize = 12;
+const DENSE_ENTRY_BYTES: usize = 4;
+
+/// Work of one explanation, counted at compile time on the background, in
+/// the units the cost constants price.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct TreeWork {
+    /// (tree, background row) pairs walked by the per-row pass.
+    pub row_passes: f64,
+    /// Nodes those walks enter (estimated from a sample of rows).
+    pub row_nodes: f64,
+    /// Nodes of the instance's pass over the pattern trees.
+    pub pattern_nodes: f64,
+    /// Leaves of the pattern trees that have path players.
+    pub pattern_leaves: f64,
+    /// Patterns scanned, or follow masks enumerated (expected over instances
+    /// distributed like the background), at those leaves.
+    pub pattern_units: f64,
+}
+
+impl TreeWork {
+    /// Predicted time of the work, in ns, from the measured unit costs.
+    pub fn predicted_ns(&self) -> f64 {
+        self.row_passes * ROW_PASS_NS
+            + self.row_nodes * ROW_NODE_NS
+            + self.pattern_nodes * PATTERN_NODE_NS
+            + self.pattern_leaves * PATTERN_LEAF_NS
+            + self.pattern_units * PATTERN_UNIT_NS
+    }
+
+    fn add(&mut self, other: &TreeWork) {
+        self.row_passes += other.row_passes;
+        self.row_nodes += other.row_nodes;
+        self.pattern_nodes += other.pattern_nodes;
+        self.pattern_leaves += other.pattern_leaves;
+        self.pattern_units += other.pattern_units;
+    }
+}
+
+/// A tree ensemble compiled against one background for exact Shapley and
+/// Banzhaf values under marginal removal. Built once per registration; the
+/// per-tree choice of form depends only on (ensemble, players, background,
+/// memory limit), so a rebuild gives bit-for-bit the same answers.
+#[derive(Debug, Clone)]
+pub struct CompiledTrees {
+    /// One per tree: its pattern form, or `None` for the per-row pass.
+    forms: Vec<Option<PatternTree>>,
+    /// Shape of what was compiled, checked again at each explanation.
+    rows: usize,
+    players: usize,
+    /// Mean raw output over the background, `v(∅)`.
+    value_empty: f64,
+    /// Counted work of one explanation with the chosen forms.
+    work: TreeWork,
+    memory: usize,
+}
+
+impl CompiledTrees {
+    /// Built once per registration. `memory_limit_bytes` bounds the
+    /// summaries; trees beyond it keep the per-row pass.
+    pub fn compile(
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        memory_limit_bytes: usize,
+    ) -> Result<CompiledTrees> {
+        CompiledTrees::build(ensemble, players, background, memory_limit_bytes, false)
+    }
+
+    /// Every tree that a u64 mask can describe in pattern form, whatever the
+    /// costs: for tests that must exercise that form.
+    #[doc(hidden)]
+    pub fn compile_all_patterns(
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+    ) -> Result<CompiledTrees> {
+        CompiledTrees::build(ensemble, players, background, usize::MAX, true)
+    }
+
+    fn build(
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        memory_limit_bytes: usize,
+        all_patterns: bool,
+    ) -> Result<CompiledTrees> {
+        check_background(ensemble, players, background)?;
+        let rows = background.nrows();
+        let mut outputs = vec![0.0; rows];
+        ensemble.predict(background, &mut outputs);
+        let value_empty = outputs.iter().sum::<f64>() / rows as f64;
+
+        let data = background.as_standard_layout();
+        let data = data.as_slice().expect("standard layout is contiguous");
+        let sample: Vec<usize> = {
+            let size = rows.min(SAMPLE_ROWS);
+            (0..size).map(|i| i * rows / size).collect()
+        };
+        let sample_rows: Vec<&[f64]> = sample
+            .iter()
+            .map(|&r| &data[r * background.ncols()..(r + 1) * background.ncols()])
+            .collect();
+        // Shapley and Banzhaf walks enter the same nodes; the summary only
+        // changes the shares.
+        let shares = Shares::new(Summary::Shapley, players.len());
+        let mut walk = Walk::new(players.len());
+        let mut counter = Counter::default();
+
+        let mut remaining = memory_limit_bytes;
+        let mut forms = Vec::with_capacity(ensemble.trees().len());
+        let mut work = TreeWork::default();
+        let mut memory = 0;
+        for tree in ensemble.trees() {
+            // Each sampled row walks against the next one as the instance:
+            // instances are expected to look like background rows.
+            walk.entered = 0;
+            for (i, x) in sample_rows.iter().enumerate() {
+                let z = background.row(sample[(i + 1) % sample.len()]);
+                walk.add_tree(tree, players, x, z, &shares);
+            }
+            let row_work = TreeWork {
+                row_passes: rows as f64,
+                row_nodes: rows as f64 * walk.entered as f64 / sample.len() as f64,
+                ..TreeWork::default()
+            };
+            let row_ns = row_work.predicted_ns();
+            let pattern = Shape::of(tree, players)
+                .filter(|shape| {
+                    // The instance's pass and one unit per leaf are the
+                    // least a pattern tree costs, and its nodes and leaves
+                    // the least it stores.
+                    let floor = TreeWork {
+                        pattern_nodes: shape.nodes.len() as f64,
+                        pattern_leaves: shape.leaves.len() as f64,
+                        pattern_units: shape.leaves.len() as f64,
+                        ..TreeWork::default()
+                    };
+                    (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
+                })
+                .and_then(|shape| counter.count(shape, data, rows, remaining))
+                .filter(|(_, pattern_work)| all_patterns || pattern_work.predicted_ns() < row_ns);
+            match pattern {
+                Some((pattern, pattern_work)) => {
+                    let bytes = pattern.bytes();
+                    remaining -= bytes;
+                    memory += bytes;
+                    work.add(&pattern_work);
+                    forms.push(Some(pattern));
+                }
+                None => {
+                    work.add(&row_work);
+                    forms.push(None);
+                }
+            }
+        }
+        Ok(CompiledTrees {
+            forms,
+            rows,
+            players: players.len(),
+            value_empty,
+            work,
+            memory,
+        })
+    }
+
+    /// Exact Shapley or Banzhaf values under marginal removal over the
+    /// background it was compiled with, passed again because trees kept in
+    /// per-row form still walk it. The same [`Estimate`] as
+    /// [`super::explain`] gives over that background.
+    pub fn explain(
+        &self,
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        instance: &[f64],
+        summary: Summary,
+    ) -> Result<Estimate> {
+        check_summary(summary)?;
+        check_background(ensemble, players, background)?;
+        check_instance(ensemble, instance)?;
+        if ensemble.trees().len() != self.forms.len()
+            || background.nrows() != self.rows
+            || players.len() != self.players
+        {
+            return Err(EngineError::new(
+                "background",
+                format!(
+                    "compiled for {} trees, {} players and {} background rows; given {}, {} and {}",
+                    self.forms.len(),
+                    self.players,
+                    self.rows,
+                    ensemble.trees().len(),
+                    players.len(),
+                    background.nrows()
+                ),
+            ));
+        }
+        let shares = Shares::new(summary, players.len());
+        // Totals over background rows: the pattern trees weigh each
+        // pattern by its row count, the per-row trees add row by row.
+        let mut totals = vec![0.0; players.len()];
+        let mut fails = Vec::new();
+        for pattern in self.forms.iter().flatten() {
+            pattern.add(instance, &shares, &mut fails, &mut totals);
+        }
+        let row_trees: Vec<&Tree> = ensemble
+            .trees()
+            .iter()
+            .zip(&self.forms)
+            .filter(|(_, form)| form.is_none())
+            .map(|(tree, _)| tree)
+            .collect();
+        if !row_trees.is_empty() {
+            let mut walk = Walk::new(players.len());
+            for reference in background.rows() {
+                for tree in &row_trees {
+                    walk.add_tree(tree, players, instance, reference, &shares);
+                }
+            }
+            for (total, walked) in totals.iter_mut().zip(&walk.values) {
+                *total += walked;
+            }
+        }
+        let rows = self.rows as f64;
+        let values = totals.iter().map(|total| total / rows).collect();
+        let mut full = [0.0];
+        ensemble.predict(aview1(instance).insert_axis(Axis(0)), &mut full);
+        Ok(Estimate::exact(values, full[0], self.value_empty))
+    }
+
+    /// Heap bytes of the pattern summaries.
+    pub fn memory_bytes(&self) -> usize {
+        self.memory
+    }
+
+    /// Trees in pattern form; the rest take the per-row pass.
+    pub fn pattern_trees(&self) -> usize {
+        self.forms.iter().flatten().count()
+    }
+
+    /// Predicted time of one explanation, in ns, from the work counted at
+    /// compile time and the measured unit costs, for the planner.
+    pub fn predicted_ns(&self) -> f64 {
+        self.work.predicted_ns()
+    }
+
+    /// The counted work behind [`CompiledTrees::predicted_ns`] (the bench
+    /// fits the unit costs to it).
+    #[doc(hidden)]
+    pub fn work(&self) -> TreeWork {
+        self.work
+    }
+}
+
+/// A node in preorder, so that a parent comes before its children and the
+/// left child right after its parent.
+#[derive(Debug, Clone, Copy)]
+struct Node {
+    threshold: f64,
+    /// Split feature, or [`LEAF`].
+    feature: u32,
+    /// Preorder index of the right child; a leaf's index in `leaves`.
+    right: u32,
+    /// Index of the split's player among the path players from the root:
+    /// the same for every leaf below, so one bit position serves them all.
+    slot: u8,
+    missing_left: bool,
+}
+
+const LEAF: u32 = u32::MAX;
+
+impl Node {
+    /// `Tree::goes_left`, on the compiled copy.
+    fn goes_left(&self, x: f64) -> bool {
+        if x.is_nan() {
+            self.missing_left
+        } else {
+            x < self.threshold
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Leaf {
+    value: f64,
+    /// Number of distinct players on the path.
+    slots: u32,
+    /// Where the path players start in `leaf_players`.
+    players_at: u32,
+    /// Dense: where the 2^slots table starts in `dense`. Sparse: where the
+    /// patterns start in `masks` / `counts`.
+    at: u32,
+    /// Entries in the dense table or the pattern list (0: nothing stored).
+    len: u32,
+    dense: bool,
+}
+
+/// The background-independent part of a tree in pattern form.
+struct Shape {
+    nodes: Vec<Node>,
+    leaves: Vec<Leaf>,
+    leaf_players: Vec<u32>,
+}
+
+impl Shape {
+    /// `None` when some leaf has more path players than a u64 mask holds.
+    fn of(tree: &Tree, players: &Players) -> Option<Shape> {
+        const NO_PARENT: u32 = u32::MAX;
+        let mut nodes = Vec::with_capacity(tree.nodes());
+        let mut leaves = Vec::new();
+        let mut leaf_players = Vec::new();
+        // Players per slot on the current path; entries past a node's own
+        // length belong to finished siblings and are cut off on entry.
+        let mut path: Vec<u32> = Vec::new();
+        // (tree node, path length on entry, preorder index of the parent
+        // whose right child this is).
+        let mut stack = vec![(0usize, 0usize, NO_PARENT)];
+        while let Some((node, length, right_of)) = stack.pop() {
+            path.truncate(length);
+            let index = nodes.len() as u32;
+            if right_of != NO_PARENT {
+                nodes[right_of as usize] = Node {
+                    right: index,
+                    ..nodes[right_of as usize]
+                };
+            }
+            if tree.is_leaf(node) {
+                nodes.push(Node {
+                    threshold: 0.0,
+                    feature: LEAF,
+                    right: leaves.len() as u32,
+                    slot: 0,
+                    missing_left: false,
+                });
+                leaves.push(Leaf {
+                    value: tree.value(node),
+                    slots: path.len() as u32,
+                    players_at: leaf_players.len() as u32,
+                    at: 0,
+                    len: 0,
+                    dense: false,
+                });
+                leaf_players.extend_from_slice(&path);
+                continue;
+            }
+            let feature = tree.feature(node);
+            let player = players.player_of(feature) as u32;
+            let slot = match path.iter().position(|&p| p == player) {
+                Some(slot) => slot,
+                None => {
+                    path.push(player);
+                    path.len() - 1
+                }
+            };
+            if slot >= MAX_SLOTS {
+                return None;
+            }
+            nodes.push(Node {
+                threshold: tree.threshold(node),
+                feature: feature as u32,
+                right: 0,
+                slot: slot as u8,
+                missing_left: tree.missing_left(node),
+            });
+            stack.push((tree.right(node), path.len(), index));
+            stack.push((tree.left(node), path.len(), NO_PARENT));
+        }
+        Some(Shape {
+            nodes,
+            leaves,
+            leaf_players,
+        })
+    }
+
+    fn bytes(&self) -> usize {
+        self.nodes.len() * size_of::<Node>()
+            + self.leaves.len() * size_of::<Leaf>()
+            + self.leaf_players.len() * size_of::<u32>()
+    }
+}
+
+/// All of a leaf's path players.
+fn all_slots(slots: u32) -> u64 {
+    if slots as usize >= MAX_SLOTS {
+        u64::MAX
+    } else {
+        (1u64 << slots) - 1
+    }
+}
+
+/// A tree in pattern form: its shape and, per leaf, the count of
+/// background rows per follow pattern.
+#[derive(Debug, Clone)]
+struct PatternTree {
+    nodes: Vec<Node>,
+    leaves: Vec<Leaf>,
+    leaf_players: Vec<u32>,
+    /// Dense leaves' tables, indexed by follow pattern.
+    dense: Vec<u32>,
+    /// Sparse leaves' patterns (ascending) and their row counts.
+    masks: Vec<u64>,
+    counts: Vec<u32>,
+}
+
+impl PatternTree {
+    fn bytes(&self) -> usize {
+        self.nodes.capacity() * size_of::<Node>()
+            + self.leaves.capacity() * size_of::<Leaf>()
+            + self.leaf_players.capacity() * size_of::<u32>()
+            + self.dense.capacity() * size_of::<u32>()
+            + self.masks.capacity() * size_of::<u64>()
+            + self.counts.capacity() * size_of::<u32>()
+    }
+
+    /// Adds this tree's attributions, summed over background rows, to
+    /// `totals`. One pass of the instance finds, per leaf, the path players
+    /// it fails (`fails`, scratch reused across trees).
+    fn add(&self, instance: &[f64], shares: &Shares, fails: &mut Vec<u64>, totals: &mut [f64]) {
+        fails.clear();
+        fails.resize(self.nodes.len(), 0);
+        let mut gains = [0.0; MAX_SLOTS];
+        for (index, node) in self.nodes.iter().enumerate() {
+            let failed = fails[index];
+            if node.feature == LEAF {
+                self.add_leaf(node.right as usize, failed, shares, &mut gains, totals);
+                continue;
+            }
+            let bit = 1u64 << node.slot;
+            let (left, right) = if node.goes_left(instance[node.feature as usize]) {
+                (failed, failed | bit)
+            } else {
+                (failed | bit, failed)
+            };
+            fails[index + 1] = left;
+            fails[node.right as usize] = right;
+        }
+    }
+
+    /// One leaf, given the path players the instance fails (B, all of
+    /// them). A pattern Z counts iff it holds all of B; then A = X \ Z.
+    fn add_leaf(
+        &self,
+        leaf: usize,
+        missed: u64,
+        shares: &Shares,
+        gains: &mut [f64; MAX_SLOTS],
+        totals: &mut [f64],
+    ) {
+        let leaf = &self.leaves[leaf];
+        if leaf.len == 0 {
+            return;
+        }
+        let kept = all_slots(leaf.slots) & !missed;
+        let (kept_count, b) = (kept.count_ones() as usize, missed.count_ones() as usize);
+        // Per unit of the leaf value: what each member of B loses, in total
+        // over the rows; `gains` holds the same for each member of A.
+        let mut loss = 0.0;
+        let mut visit = |followed: u64, count: u32| {
+            let a = kept_count - followed.count_ones() as usize;
+            if a + b == 0 {
+                return;
+            }
+            let count = f64::from(count);
+            loss += count * shares.get(b, a);
+            let gain = count * shares.get(a, b);
+            let mut only_instance = kept & !followed;
+            while only_instance != 0 {
+                gains[only_instance.trailing_zeros() as usize] += gain;
+                only_instance &= only_instance - 1;
+            }
+        };
+        let (at, len) = (leaf.at as usize, leaf.len as usize);
+        if leaf.dense {
+            // Every Z ⊇ B is B ∪ Y for a subset Y of X: enumerate those.
+            let table = &self.dense[at..at + len];
+            let mut subset = kept;
+            loop {
+                let count = table[(missed | subset) as usize];
+                if count != 0 {
+                    visit(subset, count);
+                }
+                if subset == 0 {
+                    break;
+                }
+                subset = (subset - 1) & kept;
+            }
+        } else {
+            for (&mask, &count) in self.masks[at..at + len]
+                .iter()
+                .zip(&self.counts[at..at + len])
+            {
+                if mask & missed == missed {
+                    visit(mask & kept, count);
+                }
+            }
+        }
+        let players = &self.leaf_players[leaf.players_at as usize..][..leaf.slots as usize];
+        let value = leaf.value;
+        let mut rest = missed;
+        while rest != 0 {
+            totals[players[rest.trailing_zeros() as usize] as usize] -= value * loss;
+            rest &= rest - 1;
+        }
+        let mut rest = kept;
+        while rest != 0 {
+            let slot = rest.trailing_zeros() as usize;
+            totals[players[slot] as usize] += value * gains[slot];
+            gains[slot] = 0.0;
+            rest &= rest - 1;
+        }
+    }
+}
+
+/// Scratch for counting patterns, reused across trees.
+#[derive(Default)]
+struct Counter {
+    fails: Vec<u64>,
+    tables: Vec<u32>,
+    masks: Vec<u64>,
+}
+
+impl Counter {
+    /// Counts every background row's follow pattern at every leaf of
+    /// `shape`. `None` when the summaries would exceed `budget` bytes.
+    fn count(
+        &mut self,
+        shape: Shape,
+        data: &[f64],
+        rows: usize,
+        budget: usize,
+    ) -> Option<(PatternTree, TreeWork)> {
+        let Shape {
+            nodes,
+            mut leaves,
+            leaf_players,
+        } = shape;
+        let columns = data.len() / rows;
+        let table_entries: usize = leaves
+            .iter()
+            .map(|leaf| {
+                if leaf.slots as usize > DENSE_MAX_SLOTS {
+                    usize::MAX / 2
+                } else {
+                    1 << leaf.slots
+                }
+            })
+            .fold(0usize, |total, entries| total.saturating_add(entries));
+        // Per leaf: its patterns (ascending) and their counts, appended to
+        // these lists before each leaf picks its stored form.
+        let mut found_masks: Vec<u64> = Vec::new();
+        let mut found_counts: Vec<u32> = Vec::new();
+        let mut found_at = Vec::with_capacity(leaves.len() + 1);
+        if table_entries <= SCRATCH_MAX_ENTRIES {
+            // One pass of each row over the tree, counting into one table
+            // per leaf.
+            let mut table_at = Vec::with_capacity(leaves.len());
+            let mut entries = 0;
+            for leaf in &leaves {
+                table_at.push(entries);
+                entries += 1usize << leaf.slots;
+            }
+            self.tables.clear();
+            self.tables.resize(entries, 0);
+            self.fails.clear();
+            self.fails.resize(nodes.len(), 0);
+            for row in data.chunks_exact(columns) {
+                for (index, node) in nodes.iter().enumerate() {
+                    let failed = self.fails[index];
+                    if node.feature == LEAF {
+                        let leaf = node.right as usize;
+                        let followed = all_slots(leaves[leaf].slots) & !failed;
+                        self.tables[table_at[leaf] + followed as usize] += 1;
+                        continue;
+                    }
+                    let bit = 1u64 << node.slot;
+                    let (left, right) = if node.goes_left(row[node.feature as usize]) {
+                        (failed, failed | bit)
+                    } else {
+                        (failed | bit, failed)
+                    };
+                    self.fails[index + 1] = left;
+                    self.fails[node.right as usize] = right;
+                }
+            }
+            for (leaf, &at) in leaves.iter().zip(&table_at) {
+                found_at.push(found_masks.len());
+                for (mask, &count) in self.tables[at..at + (1 << leaf.slots)].iter().enumerate() {
+                    if count != 0 {
+                        found_masks.push(mask as u64);
+                        found_counts.push(count);
+                    }
+                }
+            }
+        } else {
+            // Too many table entries: leaf by leaf, each row follows the
+            // leaf's path, and the patterns are sorted and counted.
+            let mut path: Vec<(usize, bool)> = Vec::new();
+            // (node, the parent's path length, the edge from the parent).
+            let mut stack = vec![(0usize, 0usize, None)];
+            while let Some((index, length, edge)) = stack.pop() {
+                path.truncate(length);
+                if let Some(edge) = edge {
+                    path.push(edge);
+                }
+                let node = nodes[index];
+                if node.feature != LEAF {
+                    stack.push((node.right as usize, path.len(), Some((index, false))));
+                    stack.push((index + 1, path.len(), Some((index, true))));
+                    continue;
+                }
+                let full = all_slots(leaves[node.right as usize].slots);
+                self.masks.clear();
+                for row in data.chunks_exact(columns) {
+                    let mut failed = 0u64;
+                    for &(on_path, went_left) in &path {
+                        let split = nodes[on_path];
+                        if split.goes_left(row[split.feature as usize]) != went_left {
+                            failed |= 1 << split.slot;
+                        }
+                    }
+                    self.masks.push(full & !failed);
+                }
+                self.masks.sort_unstable();
+                found_at.push(found_masks.len());
+                for run in self.masks.chunk_by(|a, b| a == b) {
+                    found_masks.push(run[0]);
+                    found_counts.push(run.len() as u32);
+                }
+            }
+            // Leaves were met in preorder, which is their index order.
+        }
+        found_at.push(found_masks.len());
+
+        let mut pattern = PatternTree {
+            nodes,
+            leaves: Vec::new(),
+            leaf_players,
+            dense: Vec::new(),
+            masks: Vec::new(),
+            counts: Vec::new(),
+        };
+        let mut work = TreeWork {
+            pattern_nodes: pattern.nodes.len() as f64,
+            ..TreeWork::default()
+        };
+        for (leaf, found) in leaves.iter_mut().zip(found_at.windows(2)) {
+            if leaf.slots == 0 {
+                continue;
+            }
+            let (masks, counts) = (
+                &found_masks[found[0]..found[1]],
+                &found_counts[found[0]..found[1]],
+            );
+            work.pattern_leaves += 1.0;
+            let slots = leaf.slots as usize;
+            leaf.dense = slots <= DENSE_MAX_SLOTS
+                && DENSE_ENTRY_BYTES << slots <= SPARSE_ENTRY_BYTES * masks.len();
+            if leaf.dense {
+                leaf.at = pattern.dense.len() as u32;
+                leaf.len = 1 << slots;
+                pattern.dense.resize(pattern.dense.len() + (1 << slots), 0);
+                let table = &mut pattern.dense[leaf.at as usize..];
+                let mut enumerated = 0.0;
+                for (&mask, &count) in masks.iter().zip(counts) {
+                    table[mask as usize] = count;
+                    // An instance like this row enumerates 2^|Z| masks.
+                    enumerated += f64::from(count) * (mask.count_ones() as f64).exp2();
+                }
+                work.pattern_units += enumerated / rows as f64;
+            } else {
+                leaf.at = pattern.masks.len() as u32;
+                leaf.len = masks.len() as u32;
+                pattern.masks.extend_from_slice(masks);
+                pattern.counts.extend_from_slice(counts);
+                work.pattern_units += masks.len() as f64;
+            }
+            if pattern.dense.len() * DENSE_ENTRY_BYTES + pattern.masks.len() * SPARSE_ENTRY_BYTES
+                > budget
+            {
+                return None;
+            }
+        }
+        pattern.leaves = leaves;
+        pattern.dense.shrink_to_fit();
+        pattern.masks.shrink_to_fit();
+        pattern.counts.shrink_to_fit();
+        if pattern.bytes() > budget {
+            return None;
+        }
+        Some((pattern, work))
+    }
+}
