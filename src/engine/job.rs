@@ -219,10 +219,6 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         ValidRemoval::ConditionalGaussian { .. } => RemovalKind::ConditionalGaussian,
         ValidRemoval::ConditionalNeighbors { .. } => RemovalKind::ConditionalNeighbors,
     };
-    let references = match removal {
-        ValidRemoval::Fixed(_) => 1,
-        _ => background_rows,
-    };
     let chosen = plan::plan(&PlanInput {
         players: model.players().len(),
         rows_per_coalition,
@@ -234,7 +230,7 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         budget: request.budget,
         max_evaluations: request.max_evaluations,
         row_cost_ns: model.row_cost_ns(),
-        exact_cost_ns: model.exact_cost_ns(references),
+        exact_cost_ns: model.exact_cost_ns(matches!(removal, ValidRemoval::Fixed(_))),
         enumeration_cap: request.enumeration_cap,
     })?;
     let work = match chosen.estimator {
@@ -315,13 +311,18 @@ impl Job {
                             self.summary,
                         )?
                     }
-                    _ => estimate::tree::explain(
-                        ensemble,
-                        players,
-                        &self.instance,
-                        model.background(),
-                        self.summary,
-                    )?,
+                    _ => {
+                        let Some(compiled) = model.compiled_trees() else {
+                            return Err(self.not_planned("the ensemble compiled at preparation"));
+                        };
+                        compiled.explain(
+                            ensemble,
+                            players,
+                            model.background(),
+                            &self.instance,
+                            self.summary,
+                        )?
+                    }
                 };
                 (estimate, Counts::default())
             }

@@ -10,7 +10,7 @@ use std::time::{Duration, Instant};
 use ndarray::{Array2, ArrayView2};
 
 use super::error::{EngineError, ErrorKind, Result};
-use super::estimate::tree;
+use super::estimate::tree::{self, CompiledTrees};
 use super::model::{Model, Structure};
 use super::players::Players;
 use super::removal::{self, GaussianFit};
@@ -18,6 +18,10 @@ use super::summary::Summary;
 
 /// Background rows the exact tree algorithm is timed on at preparation.
 const TREE_TIMING_ROWS: usize = 16;
+
+/// Most memory the per-leaf background summaries of one tree ensemble may
+/// take; trees beyond it keep the per-row pass.
+pub const TREE_SUMMARY_LIMIT_BYTES: usize = 256 << 20;
 
 /// Largest Gaussian fit made at preparation, in multiply-adds (rows ×
 /// features²): about a tenth of a second. A larger one is made by the first
@@ -42,8 +46,11 @@ pub struct PreparedModel {
     neighbor_scales: Result<Vec<f64>>,
     /// The Gaussian fitted to the background, or why none fits.
     gaussian: OnceLock<Result<GaussianFit>>,
-    /// Measured time of the exact tree algorithm per (reference row) over
-    /// the whole ensemble, in ns; 0 for other models.
+    /// A tree ensemble summarised against the background, for marginal
+    /// removal; `None` for other models.
+    compiled_trees: Option<CompiledTrees>,
+    /// Measured time of the exact tree algorithm per reference row over
+    /// the whole ensemble (FIXED removal), in ns; 0 for other models.
     tree_reference_cost_ns: f64,
     /// How long preparation took.
     preparation: Duration,
@@ -117,9 +124,19 @@ impl PreparedModel {
             background_mean,
             neighbor_scales,
             gaussian: OnceLock::new(),
+            compiled_trees: None,
             tree_reference_cost_ns: 0.0,
             preparation: Duration::ZERO,
         };
+        if let Structure::Trees(ensemble) = prepared.structure() {
+            let compiled = CompiledTrees::compile(
+                ensemble,
+                &prepared.players,
+                prepared.background.view(),
+                TREE_SUMMARY_LIMIT_BYTES,
+            )?;
+            prepared.compiled_trees = Some(compiled);
+        }
         prepared.tree_reference_cost_ns = prepared.measure_tree_reference_cost();
         let (rows, features) = prepared.background.dim();
         if rows.saturating_mul(features).saturating_mul(features) <= EAGER_GAUSSIAN_WORK {
@@ -177,15 +194,22 @@ impl PreparedModel {
             .map_err(|error| error.clone())
     }
 
-    /// Predicted time of the model-specific exact algorithm against
-    /// `references` reference rows (1 for FIXED removal), in ns; `None`
+    /// The tree ensemble summarised against the background (tree models
+    /// only).
+    pub fn compiled_trees(&self) -> Option<&CompiledTrees> {
+        self.compiled_trees.as_ref()
+    }
+
+    /// Predicted time of the model-specific exact algorithm, in ns, over
+    /// the whole background (`fixed` false) or one reference row; `None`
     /// when the model has none.
-    pub fn exact_cost_ns(&self, references: usize) -> Option<f64> {
-        match self.structure() {
+    pub fn exact_cost_ns(&self, fixed: bool) -> Option<f64> {
+        match (self.structure(), &self.compiled_trees) {
             // One pass over the weights: about one model row.
-            Structure::Linear(_) => Some(self.row_cost_ns),
-            Structure::Trees(_) => Some(self.tree_reference_cost_ns * references as f64),
-            Structure::Opaque => None,
+            (Structure::Linear(_), _) => Some(self.row_cost_ns),
+            (Structure::Trees(_), Some(compiled)) if !fixed => Some(compiled.predicted_ns()),
+            (Structure::Trees(_), _) => Some(self.tree_reference_cost_ns),
+            (Structure::Opaque, _) => None,
         }
     }
 
@@ -223,6 +247,10 @@ impl PreparedModel {
     pub fn derived_bytes(&self) -> usize {
         let floats = |values: &Result<Vec<f64>>| values.as_ref().map_or(0, Vec::len);
         let features = self.background.ncols();
+        let trees = self
+            .compiled_trees
+            .as_ref()
+            .map_or(0, CompiledTrees::memory_bytes);
         // Mean, scales, correlation and its factor.
         let gaussian = match self.gaussian.get() {
             Some(Ok(_)) => 2 * features + 2 * features * features,
@@ -230,5 +258,6 @@ impl PreparedModel {
         };
         size_of::<f64>()
             * (floats(&self.background_mean) + floats(&self.neighbor_scales) + gaussian)
+            + trees
     }
 }

@@ -16,9 +16,10 @@ use ndarray::{ArrayView2, Axis, aview1};
 use super::{Shares, Walk, check_background, check_instance, check_summary};
 use crate::engine::error::{EngineError, Result};
 use crate::engine::estimate::Estimate;
+use crate::engine::model::Model;
 use crate::engine::players::Players;
 use crate::engine::summary::Summary;
-use crate::model::{Model, Tree, TreeEnsemble};
+use crate::engine::trees::{Tree, TreeEnsemble};
 
 // Unit costs in ns, fitted by least squares to explanation times of the
 // all-per-row and all-pattern forms (depths 4, 6 and 8, 10 to 10,000 rows)
