@@ -20,21 +20,25 @@ use crate::engine::players::Players;
 use crate::engine::summary::Summary;
 use crate::model::{Model, Tree, TreeEnsemble};
 
-// Unit costs in ns, fitted by least squares to explanation times of the
-// all-per-row and all-pattern forms (depths 4, 6 and 8, 10 to 10,000 rows)
-// with `cargo bench --no-default-features --bench trees` on the machine the
-// bench's first line names. Only their ratios steer the per-tree choice;
-// their scale is what `predicted_ns` reports.
-/// Per (tree, background row) of the per-row pass.
-const ROW_PASS_NS: f64 = 20.0;
+// Unit costs in ns: least squares (weighted to relative error, negative
+// costs dropped) of the median explanation times of the all-per-row and
+// all-pattern forms of 50 trees of depth 4, 6 and 8 on 10 to 10,000 rows,
+// printed by `cargo bench --no-default-features --bench trees` (2-core AMD
+// EPYC, 2026-12-02). A separate cost per (tree, row) of the per-row pass
+// came out negative there, so the nodes it enters carry it. Only their
+// ratios steer the per-tree choice; their scale is what `predicted_ns`
+// reports.
 /// Per node the per-row pass enters.
-const ROW_NODE_NS: f64 = 6.0;
-/// Per node of the instance's pass over a pattern tree.
-const PATTERN_NODE_NS: f64 = 2.0;
-/// Per leaf of a pattern tree.
-const PATTERN_LEAF_NS: f64 = 10.0;
-/// Per pattern scanned or follow mask enumerated at a leaf.
-const PATTERN_UNIT_NS: f64 = 2.0;
+const ROW_NODE_NS: f64 = 13.9;
+/// Per node of the instance's pass over a pattern tree (leaves included:
+/// a binary tree has one more leaf than inner nodes, so they are priced
+/// together).
+const PATTERN_NODE_NS: f64 = 6.8;
+/// Per pattern scanned at a sparse leaf.
+const PATTERN_SCANNED_NS: f64 = 2.0;
+/// Per follow mask enumerated at a dense leaf (a lookup in a table that may
+/// be out of cache).
+const PATTERN_ENUMERATED_NS: f64 = 4.3;
 
 /// Reference rows sampled (evenly spaced) to count the nodes a per-row pass
 /// enters; bounds the compile time that estimate takes.
@@ -47,6 +51,8 @@ const DENSE_MAX_SLOTS: usize = 12;
 /// Counting with one dense table per leaf while the tables of a tree total
 /// at most this many entries; beyond, leaf by leaf with a sort.
 const SCRATCH_MAX_ENTRIES: usize = 1 << 14;
+/// Rows counted together, node by node.
+const BLOCK_ROWS: usize = 32;
 /// Bytes per stored pattern in the sparse form (u64 mask + u32 count) and
 /// per entry of a dense table.
 const SPARSE_ENTRY_BYTES: usize = 12;
@@ -56,35 +62,31 @@ const DENSE_ENTRY_BYTES: usize = 4;
 /// the units the cost constants price.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
 pub struct TreeWork {
-    /// (tree, background row) pairs walked by the per-row pass.
-    pub row_passes: f64,
-    /// Nodes those walks enter (estimated from a sample of rows).
+    /// Nodes the per-row pass enters (estimated from a sample of rows).
     pub row_nodes: f64,
     /// Nodes of the instance's pass over the pattern trees.
     pub pattern_nodes: f64,
-    /// Leaves of the pattern trees that have path players.
-    pub pattern_leaves: f64,
-    /// Patterns scanned, or follow masks enumerated (expected over instances
-    /// distributed like the background), at those leaves.
-    pub pattern_units: f64,
+    /// Patterns scanned at sparse leaves.
+    pub pattern_scanned: f64,
+    /// Follow masks enumerated at dense leaves, expected over instances
+    /// distributed like the background.
+    pub pattern_enumerated: f64,
 }
 
 impl TreeWork {
     /// Predicted time of the work, in ns, from the measured unit costs.
     pub fn predicted_ns(&self) -> f64 {
-        self.row_passes * ROW_PASS_NS
-            + self.row_nodes * ROW_NODE_NS
+        self.row_nodes * ROW_NODE_NS
             + self.pattern_nodes * PATTERN_NODE_NS
-            + self.pattern_leaves * PATTERN_LEAF_NS
-            + self.pattern_units * PATTERN_UNIT_NS
+            + self.pattern_scanned * PATTERN_SCANNED_NS
+            + self.pattern_enumerated * PATTERN_ENUMERATED_NS
     }
 
     fn add(&mut self, other: &TreeWork) {
-        self.row_passes += other.row_passes;
         self.row_nodes += other.row_nodes;
         self.pattern_nodes += other.pattern_nodes;
-        self.pattern_leaves += other.pattern_leaves;
-        self.pattern_units += other.pattern_units;
+        self.pattern_scanned += other.pattern_scanned;
+        self.pattern_enumerated += other.pattern_enumerated;
     }
 }
 
@@ -144,6 +146,10 @@ impl CompiledTrees {
 
         let data = background.as_standard_layout();
         let data = data.as_slice().expect("standard layout is contiguous");
+        // Column by column, so that a block of rows meets a split on
+        // contiguous values.
+        let by_column = background.t().as_standard_layout().into_owned();
+        let by_column = by_column.as_slice().expect("standard layout is contiguous");
         let sample: Vec<usize> = {
             let size = rows.min(SAMPLE_ROWS);
             (0..size).map(|i| i * rows / size).collect()
@@ -171,7 +177,6 @@ impl CompiledTrees {
                 walk.add_tree(tree, players, x, z, &shares);
             }
             let row_work = TreeWork {
-                row_passes: rows as f64,
                 row_nodes: rows as f64 * walk.entered as f64 / sample.len() as f64,
                 ..TreeWork::default()
             };
@@ -183,13 +188,12 @@ impl CompiledTrees {
                     // the least it stores.
                     let floor = TreeWork {
                         pattern_nodes: shape.nodes.len() as f64,
-                        pattern_leaves: shape.leaves.len() as f64,
-                        pattern_units: shape.leaves.len() as f64,
+                        pattern_scanned: shape.leaves.len() as f64,
                         ..TreeWork::default()
                     };
                     (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
                 })
-                .and_then(|shape| counter.count(shape, data, rows, remaining))
+                .and_then(|shape| counter.count(shape, data, by_column, rows, remaining))
                 .filter(|(_, pattern_work)| all_patterns || pattern_work.predicted_ns() < row_ns);
             match pattern {
                 Some((pattern, pattern_work)) => {
@@ -578,6 +582,7 @@ impl Counter {
         &mut self,
         shape: Shape,
         data: &[f64],
+        by_column: &[f64],
         rows: usize,
         budget: usize,
     ) -> Option<(PatternTree, TreeWork)> {
@@ -603,8 +608,8 @@ impl Counter {
         let mut found_counts: Vec<u32> = Vec::new();
         let mut found_at = Vec::with_capacity(leaves.len() + 1);
         if table_entries <= SCRATCH_MAX_ENTRIES {
-            // One pass of each row over the tree, counting into one table
-            // per leaf.
+            // One pass of each block of rows over the tree, counting into
+            // one table per leaf; a block's masks per node stay in cache.
             let mut table_at = Vec::with_capacity(leaves.len());
             let mut entries = 0;
             for leaf in &leaves {
@@ -614,24 +619,34 @@ impl Counter {
             self.tables.clear();
             self.tables.resize(entries, 0);
             self.fails.clear();
-            self.fails.resize(nodes.len(), 0);
-            for row in data.chunks_exact(columns) {
+            self.fails.resize(nodes.len() * BLOCK_ROWS, 0);
+            for start in (0..rows).step_by(BLOCK_ROWS) {
+                let block = BLOCK_ROWS.min(rows - start);
                 for (index, node) in nodes.iter().enumerate() {
-                    let failed = self.fails[index];
+                    let mut failed = [0u64; BLOCK_ROWS];
+                    failed[..block].copy_from_slice(&self.fails[index * BLOCK_ROWS..][..block]);
                     if node.feature == LEAF {
                         let leaf = node.right as usize;
-                        let followed = all_slots(leaves[leaf].slots) & !failed;
-                        self.tables[table_at[leaf] + followed as usize] += 1;
+                        let (at, all) = (table_at[leaf], all_slots(leaves[leaf].slots));
+                        for &f in &failed[..block] {
+                            self.tables[at + (all & !f) as usize] += 1;
+                        }
                         continue;
                     }
+                    let values = &by_column[node.feature as usize * rows + start..][..block];
                     let bit = 1u64 << node.slot;
-                    let (left, right) = if node.goes_left(row[node.feature as usize]) {
-                        (failed, failed | bit)
-                    } else {
-                        (failed | bit, failed)
-                    };
-                    self.fails[index + 1] = left;
-                    self.fails[node.right as usize] = right;
+                    let mut went_left = [0u64; BLOCK_ROWS];
+                    for (slot, &x) in went_left.iter_mut().zip(values) {
+                        *slot = u64::from(node.goes_left(x));
+                    }
+                    let left = &mut self.fails[(index + 1) * BLOCK_ROWS..][..block];
+                    for ((slot, &f), &l) in left.iter_mut().zip(&failed).zip(&went_left) {
+                        *slot = f | (bit & (l.wrapping_sub(1)));
+                    }
+                    let right = &mut self.fails[node.right as usize * BLOCK_ROWS..][..block];
+                    for ((slot, &f), &l) in right.iter_mut().zip(&failed).zip(&went_left) {
+                        *slot = f | (bit & l.wrapping_neg());
+                    }
                 }
             }
             for (leaf, &at) in leaves.iter().zip(&table_at) {
@@ -703,7 +718,6 @@ impl Counter {
                 &found_masks[found[0]..found[1]],
                 &found_counts[found[0]..found[1]],
             );
-            work.pattern_leaves += 1.0;
             let slots = leaf.slots as usize;
             leaf.dense = slots <= DENSE_MAX_SLOTS
                 && DENSE_ENTRY_BYTES << slots <= SPARSE_ENTRY_BYTES * masks.len();
@@ -718,13 +732,13 @@ impl Counter {
                     // An instance like this row enumerates 2^|Z| masks.
                     enumerated += f64::from(count) * (mask.count_ones() as f64).exp2();
                 }
-                work.pattern_units += enumerated / rows as f64;
+                work.pattern_enumerated += enumerated / rows as f64;
             } else {
                 leaf.at = pattern.masks.len() as u32;
                 leaf.len = masks.len() as u32;
                 pattern.masks.extend_from_slice(masks);
                 pattern.counts.extend_from_slice(counts);
-                work.pattern_units += masks.len() as f64;
+                work.pattern_scanned += masks.len() as f64;
             }
             if pattern.dense.len() * DENSE_ENTRY_BYTES + pattern.masks.len() * SPARSE_ENTRY_BYTES
                 > budget
