@@ -140,9 +140,6 @@ impl CompiledTrees {
     ) -> Result<CompiledTrees> {
         check_background(ensemble, players, background)?;
         let rows = background.nrows();
-        let mut outputs = vec![0.0; rows];
-        ensemble.predict(background, &mut outputs);
-        let value_empty = outputs.iter().sum::<f64>() / rows as f64;
 
         let data = background.as_standard_layout();
         let data = data.as_slice().expect("standard layout is contiguous");
@@ -168,6 +165,9 @@ impl CompiledTrees {
         let mut forms = Vec::with_capacity(ensemble.trees().len());
         let mut work = TreeWork::default();
         let mut memory = 0;
+        // Σ over rows and trees of the leaf value each row reaches: read off
+        // the counts where a tree was counted, predicted where it was not.
+        let mut reached = 0.0;
         for tree in ensemble.trees() {
             // Each sampled row walks against the next one as the instance:
             // instances are expected to look like background rows.
@@ -181,20 +181,34 @@ impl CompiledTrees {
                 ..TreeWork::default()
             };
             let row_ns = row_work.predicted_ns();
-            let pattern = Shape::of(tree, players)
-                .filter(|shape| {
-                    // The instance's pass and one unit per leaf are the
-                    // least a pattern tree costs, and its nodes and leaves
-                    // the least it stores.
-                    let floor = TreeWork {
-                        pattern_nodes: shape.nodes.len() as f64,
-                        pattern_scanned: shape.leaves.len() as f64,
-                        ..TreeWork::default()
-                    };
-                    (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
-                })
-                .and_then(|shape| counter.count(shape, data, by_column, rows, remaining))
-                .filter(|(_, pattern_work)| all_patterns || pattern_work.predicted_ns() < row_ns);
+            let shape = Shape::of(tree, players).filter(|shape| {
+                // The instance's pass and one unit per leaf are the
+                // least a pattern tree costs, and its nodes and leaves
+                // the least it stores.
+                let floor = TreeWork {
+                    pattern_nodes: shape.nodes.len() as f64,
+                    pattern_scanned: shape.leaves.len() as f64,
+                    ..TreeWork::default()
+                };
+                (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
+            });
+            let pattern = match shape {
+                Some(shape) => {
+                    let (reached_here, pattern) =
+                        counter.count(shape, data, by_column, rows, remaining);
+                    reached += reached_here;
+                    pattern.filter(|(_, pattern_work)| {
+                        all_patterns || pattern_work.predicted_ns() < row_ns
+                    })
+                }
+                None => {
+                    reached += data
+                        .chunks_exact(background.ncols())
+                        .map(|row| tree.predict(aview1(row)))
+                        .sum::<f64>();
+                    None
+                }
+            };
             match pattern {
                 Some((pattern, pattern_work)) => {
                     let bytes = pattern.bytes();
@@ -209,6 +223,7 @@ impl CompiledTrees {
                 }
             }
         }
+        let value_empty = ensemble.base_score() + reached / rows as f64;
         Ok(CompiledTrees {
             forms,
             rows,
@@ -577,7 +592,9 @@ struct Counter {
 
 impl Counter {
     /// Counts every background row's follow pattern at every leaf of
-    /// `shape`. `None` when the summaries would exceed `budget` bytes.
+    /// `shape`. Returns the sum over rows of the leaf value each reaches,
+    /// and the tree in pattern form, `None` when its summaries would exceed
+    /// `budget` bytes.
     fn count(
         &mut self,
         shape: Shape,
@@ -585,7 +602,7 @@ impl Counter {
         by_column: &[f64],
         rows: usize,
         budget: usize,
-    ) -> Option<(PatternTree, TreeWork)> {
+    ) -> (f64, Option<(PatternTree, TreeWork)>) {
         let Shape {
             nodes,
             mut leaves,
@@ -697,6 +714,18 @@ impl Counter {
             // Leaves were met in preorder, which is their index order.
         }
         found_at.push(found_masks.len());
+        // A row reaches the leaf whose path players it all follows.
+        let reached = leaves
+            .iter()
+            .zip(found_at.windows(2))
+            .map(|(leaf, found)| {
+                let all = all_slots(leaf.slots);
+                let count = (found[0]..found[1])
+                    .find(|&i| found_masks[i] == all)
+                    .map_or(0, |i| found_counts[i]);
+                leaf.value * f64::from(count)
+            })
+            .sum::<f64>();
 
         let mut pattern = PatternTree {
             nodes,
@@ -743,7 +772,7 @@ impl Counter {
             if pattern.dense.len() * DENSE_ENTRY_BYTES + pattern.masks.len() * SPARSE_ENTRY_BYTES
                 > budget
             {
-                return None;
+                return (reached, None);
             }
         }
         pattern.leaves = leaves;
@@ -751,8 +780,8 @@ impl Counter {
         pattern.masks.shrink_to_fit();
         pattern.counts.shrink_to_fit();
         if pattern.bytes() > budget {
-            return None;
+            return (reached, None);
         }
-        Some((pattern, work))
+        (reached, Some((pattern, work)))
     }
 }
