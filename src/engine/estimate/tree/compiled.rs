@@ -10,6 +10,10 @@
 //! Intelligence 2(1), 2020): with X the path players the instance follows and
 //! Z those a background row follows, the row counts iff X ∪ Z is every path
 //! player; then A = X \ Z and B = the path players outside X.
+//!
+//! A leaf keeps its patterns as an ascending list, scanned for those that
+//! hold all of B, or — where that would be no smaller — as a table over all
+//! 2^k patterns, where the instance looks up only the 2^|X| that hold B.
 
 use ndarray::{ArrayView2, Axis, aview1};
 
