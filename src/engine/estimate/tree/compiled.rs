@@ -113,8 +113,10 @@ pub struct CompiledTrees {
 }
 
 impl CompiledTrees {
-    /// Built once per registration. `memory_limit_bytes` bounds the
-    /// summaries; trees beyond it keep the per-row pass.
+    /// Built once per registration. Trees, in order, take the pattern form
+    /// where their counted work prices it below the per-row pass and their
+    /// summaries fit in what is left of `memory_limit_bytes`; the others
+    /// keep the per-row pass.
     pub fn compile(
         ensemble: &TreeEnsemble,
         players: &Players,
@@ -241,7 +243,9 @@ impl CompiledTrees {
     /// Exact Shapley or Banzhaf values under marginal removal over the
     /// background it was compiled with, passed again because trees kept in
     /// per-row form still walk it. The same [`Estimate`] as
-    /// [`super::explain`] gives over that background.
+    /// [`super::explain`] gives over that background. Only the shapes are
+    /// checked: passing another background of the same size is the
+    /// caller's error, and gives wrong values.
     pub fn explain(
         &self,
         ensemble: &TreeEnsemble,
