@@ -10,6 +10,10 @@
 //! Intelligence 2(1), 2020): with X the path players the instance follows and
 //! Z those a background row follows, the row counts iff X ∪ Z is every path
 //! player; then A = X \ Z and B = the path players outside X.
+//!
+//! A leaf keeps its patterns as an ascending list, scanned for those that
+//! hold all of B, or — where that would be no smaller — as a table over all
+//! 2^k patterns, where the instance looks up only the 2^|X| that hold B.
 
 use ndarray::{ArrayView2, Axis, aview1};
 
@@ -21,21 +25,25 @@ use crate::engine::players::Players;
 use crate::engine::summary::Summary;
 use crate::engine::trees::{Tree, TreeEnsemble};
 
-// Unit costs in ns, fitted by least squares to explanation times of the
-// all-per-row and all-pattern forms (depths 4, 6 and 8, 10 to 10,000 rows)
-// with `cargo bench --no-default-features --bench trees` on the machine the
-// bench's first line names. Only their ratios steer the per-tree choice;
-// their scale is what `predicted_ns` reports.
-/// Per (tree, background row) of the per-row pass.
-const ROW_PASS_NS: f64 = 20.0;
+// Unit costs in ns: least squares (weighted to relative error, negative
+// costs dropped) of the median explanation times of the all-per-row and
+// all-pattern forms of 50 trees of depth 4, 6 and 8 on 10 to 10,000 rows,
+// printed by `cargo bench --no-default-features --bench trees` (2-core AMD
+// EPYC, 2026-12-02). A separate cost per (tree, row) of the per-row pass
+// came out negative there, so the nodes it enters carry it. Only their
+// ratios steer the per-tree choice; their scale is what `predicted_ns`
+// reports.
 /// Per node the per-row pass enters.
-const ROW_NODE_NS: f64 = 6.0;
-/// Per node of the instance's pass over a pattern tree.
-const PATTERN_NODE_NS: f64 = 2.0;
-/// Per leaf of a pattern tree.
-const PATTERN_LEAF_NS: f64 = 10.0;
-/// Per pattern scanned or follow mask enumerated at a leaf.
-const PATTERN_UNIT_NS: f64 = 2.0;
+const ROW_NODE_NS: f64 = 13.9;
+/// Per node of the instance's pass over a pattern tree (leaves included:
+/// a binary tree has one more leaf than inner nodes, so they are priced
+/// together).
+const PATTERN_NODE_NS: f64 = 6.8;
+/// Per pattern scanned at a sparse leaf.
+const PATTERN_SCANNED_NS: f64 = 2.0;
+/// Per follow mask enumerated at a dense leaf (a lookup in a table that may
+/// be out of cache).
+const PATTERN_ENUMERATED_NS: f64 = 4.3;
 
 /// Reference rows sampled (evenly spaced) to count the nodes a per-row pass
 /// enters; bounds the compile time that estimate takes.
@@ -48,6 +56,8 @@ const DENSE_MAX_SLOTS: usize = 12;
 /// Counting with one dense table per leaf while the tables of a tree total
 /// at most this many entries; beyond, leaf by leaf with a sort.
 const SCRATCH_MAX_ENTRIES: usize = 1 << 14;
+/// Rows counted together, node by node.
+const BLOCK_ROWS: usize = 32;
 /// Bytes per stored pattern in the sparse form (u64 mask + u32 count) and
 /// per entry of a dense table.
 const SPARSE_ENTRY_BYTES: usize = 12;
@@ -57,35 +67,31 @@ const DENSE_ENTRY_BYTES: usize = 4;
 /// the units the cost constants price.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
 pub struct TreeWork {
-    /// (tree, background row) pairs walked by the per-row pass.
-    pub row_passes: f64,
-    /// Nodes those walks enter (estimated from a sample of rows).
+    /// Nodes the per-row pass enters (estimated from a sample of rows).
     pub row_nodes: f64,
     /// Nodes of the instance's pass over the pattern trees.
     pub pattern_nodes: f64,
-    /// Leaves of the pattern trees that have path players.
-    pub pattern_leaves: f64,
-    /// Patterns scanned, or follow masks enumerated (expected over instances
-    /// distributed like the background), at those leaves.
-    pub pattern_units: f64,
+    /// Patterns scanned at sparse leaves.
+    pub pattern_scanned: f64,
+    /// Follow masks enumerated at dense leaves, expected over instances
+    /// distributed like the background.
+    pub pattern_enumerated: f64,
 }
 
 impl TreeWork {
     /// Predicted time of the work, in ns, from the measured unit costs.
     pub fn predicted_ns(&self) -> f64 {
-        self.row_passes * ROW_PASS_NS
-            + self.row_nodes * ROW_NODE_NS
+        self.row_nodes * ROW_NODE_NS
             + self.pattern_nodes * PATTERN_NODE_NS
-            + self.pattern_leaves * PATTERN_LEAF_NS
-            + self.pattern_units * PATTERN_UNIT_NS
+            + self.pattern_scanned * PATTERN_SCANNED_NS
+            + self.pattern_enumerated * PATTERN_ENUMERATED_NS
     }
 
     fn add(&mut self, other: &TreeWork) {
-        self.row_passes += other.row_passes;
         self.row_nodes += other.row_nodes;
         self.pattern_nodes += other.pattern_nodes;
-        self.pattern_leaves += other.pattern_leaves;
-        self.pattern_units += other.pattern_units;
+        self.pattern_scanned += other.pattern_scanned;
+        self.pattern_enumerated += other.pattern_enumerated;
     }
 }
 
@@ -108,8 +114,10 @@ pub struct CompiledTrees {
 }
 
 impl CompiledTrees {
-    /// Built once per registration. `memory_limit_bytes` bounds the
-    /// summaries; trees beyond it keep the per-row pass.
+    /// Built once per registration. Trees, in order, take the pattern form
+    /// where their counted work prices it below the per-row pass and their
+    /// summaries fit in what is left of `memory_limit_bytes`; the others
+    /// keep the per-row pass.
     pub fn compile(
         ensemble: &TreeEnsemble,
         players: &Players,
@@ -139,12 +147,13 @@ impl CompiledTrees {
     ) -> Result<CompiledTrees> {
         check_background(ensemble, players, background)?;
         let rows = background.nrows();
-        let mut outputs = vec![0.0; rows];
-        ensemble.predict(background, &mut outputs);
-        let value_empty = outputs.iter().sum::<f64>() / rows as f64;
 
         let data = background.as_standard_layout();
         let data = data.as_slice().expect("standard layout is contiguous");
+        // Column by column, so that a block of rows meets a split on
+        // contiguous values.
+        let by_column = background.t().as_standard_layout().into_owned();
+        let by_column = by_column.as_slice().expect("standard layout is contiguous");
         let sample: Vec<usize> = {
             let size = rows.min(SAMPLE_ROWS);
             (0..size).map(|i| i * rows / size).collect()
@@ -163,6 +172,9 @@ impl CompiledTrees {
         let mut forms = Vec::with_capacity(ensemble.trees().len());
         let mut work = TreeWork::default();
         let mut memory = 0;
+        // Σ over rows and trees of the leaf value each row reaches: read off
+        // the counts where a tree was counted, predicted where it was not.
+        let mut reached = 0.0;
         for tree in ensemble.trees() {
             // Each sampled row walks against the next one as the instance:
             // instances are expected to look like background rows.
@@ -172,26 +184,38 @@ impl CompiledTrees {
                 walk.add_tree(tree, players, x, z, &shares);
             }
             let row_work = TreeWork {
-                row_passes: rows as f64,
                 row_nodes: rows as f64 * walk.entered as f64 / sample.len() as f64,
                 ..TreeWork::default()
             };
             let row_ns = row_work.predicted_ns();
-            let pattern = Shape::of(tree, players)
-                .filter(|shape| {
-                    // The instance's pass and one unit per leaf are the
-                    // least a pattern tree costs, and its nodes and leaves
-                    // the least it stores.
-                    let floor = TreeWork {
-                        pattern_nodes: shape.nodes.len() as f64,
-                        pattern_leaves: shape.leaves.len() as f64,
-                        pattern_units: shape.leaves.len() as f64,
-                        ..TreeWork::default()
-                    };
-                    (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
-                })
-                .and_then(|shape| counter.count(shape, data, rows, remaining))
-                .filter(|(_, pattern_work)| all_patterns || pattern_work.predicted_ns() < row_ns);
+            let shape = Shape::of(tree, players).filter(|shape| {
+                // The instance's pass and one unit per leaf are the
+                // least a pattern tree costs, and its nodes and leaves
+                // the least it stores.
+                let floor = TreeWork {
+                    pattern_nodes: shape.nodes.len() as f64,
+                    pattern_scanned: shape.leaves.len() as f64,
+                    ..TreeWork::default()
+                };
+                (all_patterns || floor.predicted_ns() < row_ns) && shape.bytes() <= remaining
+            });
+            let pattern = match shape {
+                Some(shape) => {
+                    let (reached_here, pattern) =
+                        counter.count(shape, data, by_column, rows, remaining);
+                    reached += reached_here;
+                    pattern.filter(|(_, pattern_work)| {
+                        all_patterns || pattern_work.predicted_ns() < row_ns
+                    })
+                }
+                None => {
+                    reached += data
+                        .chunks_exact(background.ncols())
+                        .map(|row| tree.predict(aview1(row)))
+                        .sum::<f64>();
+                    None
+                }
+            };
             match pattern {
                 Some((pattern, pattern_work)) => {
                     let bytes = pattern.bytes();
@@ -206,6 +230,7 @@ impl CompiledTrees {
                 }
             }
         }
+        let value_empty = ensemble.base_score() + reached / rows as f64;
         Ok(CompiledTrees {
             forms,
             rows,
@@ -219,7 +244,9 @@ impl CompiledTrees {
     /// Exact Shapley or Banzhaf values under marginal removal over the
     /// background it was compiled with, passed again because trees kept in
     /// per-row form still walk it. The same [`Estimate`] as
-    /// [`super::explain`] gives over that background.
+    /// [`super::explain`] gives over that background. Only the shapes are
+    /// checked: passing another background of the same size is the
+    /// caller's error, and gives wrong values.
     pub fn explain(
         &self,
         ensemble: &TreeEnsemble,
@@ -574,14 +601,17 @@ struct Counter {
 
 impl Counter {
     /// Counts every background row's follow pattern at every leaf of
-    /// `shape`. `None` when the summaries would exceed `budget` bytes.
+    /// `shape`. Returns the sum over rows of the leaf value each reaches,
+    /// and the tree in pattern form, `None` when its summaries would exceed
+    /// `budget` bytes.
     fn count(
         &mut self,
         shape: Shape,
         data: &[f64],
+        by_column: &[f64],
         rows: usize,
         budget: usize,
-    ) -> Option<(PatternTree, TreeWork)> {
+    ) -> (f64, Option<(PatternTree, TreeWork)>) {
         let Shape {
             nodes,
             mut leaves,
@@ -604,8 +634,8 @@ impl Counter {
         let mut found_counts: Vec<u32> = Vec::new();
         let mut found_at = Vec::with_capacity(leaves.len() + 1);
         if table_entries <= SCRATCH_MAX_ENTRIES {
-            // One pass of each row over the tree, counting into one table
-            // per leaf.
+            // One pass of each block of rows over the tree, counting into
+            // one table per leaf; a block's masks per node stay in cache.
             let mut table_at = Vec::with_capacity(leaves.len());
             let mut entries = 0;
             for leaf in &leaves {
@@ -615,24 +645,34 @@ impl Counter {
             self.tables.clear();
             self.tables.resize(entries, 0);
             self.fails.clear();
-            self.fails.resize(nodes.len(), 0);
-            for row in data.chunks_exact(columns) {
+            self.fails.resize(nodes.len() * BLOCK_ROWS, 0);
+            for start in (0..rows).step_by(BLOCK_ROWS) {
+                let block = BLOCK_ROWS.min(rows - start);
                 for (index, node) in nodes.iter().enumerate() {
-                    let failed = self.fails[index];
+                    let mut failed = [0u64; BLOCK_ROWS];
+                    failed[..block].copy_from_slice(&self.fails[index * BLOCK_ROWS..][..block]);
                     if node.feature == LEAF {
                         let leaf = node.right as usize;
-                        let followed = all_slots(leaves[leaf].slots) & !failed;
-                        self.tables[table_at[leaf] + followed as usize] += 1;
+                        let (at, all) = (table_at[leaf], all_slots(leaves[leaf].slots));
+                        for &f in &failed[..block] {
+                            self.tables[at + (all & !f) as usize] += 1;
+                        }
                         continue;
                     }
+                    let values = &by_column[node.feature as usize * rows + start..][..block];
                     let bit = 1u64 << node.slot;
-                    let (left, right) = if node.goes_left(row[node.feature as usize]) {
-                        (failed, failed | bit)
-                    } else {
-                        (failed | bit, failed)
-                    };
-                    self.fails[index + 1] = left;
-                    self.fails[node.right as usize] = right;
+                    let mut went_left = [0u64; BLOCK_ROWS];
+                    for (slot, &x) in went_left.iter_mut().zip(values) {
+                        *slot = u64::from(node.goes_left(x));
+                    }
+                    let left = &mut self.fails[(index + 1) * BLOCK_ROWS..][..block];
+                    for ((slot, &f), &l) in left.iter_mut().zip(&failed).zip(&went_left) {
+                        *slot = f | (bit & (l.wrapping_sub(1)));
+                    }
+                    let right = &mut self.fails[node.right as usize * BLOCK_ROWS..][..block];
+                    for ((slot, &f), &l) in right.iter_mut().zip(&failed).zip(&went_left) {
+                        *slot = f | (bit & l.wrapping_neg());
+                    }
                 }
             }
             for (leaf, &at) in leaves.iter().zip(&table_at) {
@@ -683,6 +723,18 @@ impl Counter {
             // Leaves were met in preorder, which is their index order.
         }
         found_at.push(found_masks.len());
+        // A row reaches the leaf whose path players it all follows.
+        let reached = leaves
+            .iter()
+            .zip(found_at.windows(2))
+            .map(|(leaf, found)| {
+                let all = all_slots(leaf.slots);
+                let count = (found[0]..found[1])
+                    .find(|&i| found_masks[i] == all)
+                    .map_or(0, |i| found_counts[i]);
+                leaf.value * f64::from(count)
+            })
+            .sum::<f64>();
 
         let mut pattern = PatternTree {
             nodes,
@@ -704,7 +756,6 @@ impl Counter {
                 &found_masks[found[0]..found[1]],
                 &found_counts[found[0]..found[1]],
             );
-            work.pattern_leaves += 1.0;
             let slots = leaf.slots as usize;
             leaf.dense = slots <= DENSE_MAX_SLOTS
                 && DENSE_ENTRY_BYTES << slots <= SPARSE_ENTRY_BYTES * masks.len();
@@ -719,18 +770,18 @@ impl Counter {
                     // An instance like this row enumerates 2^|Z| masks.
                     enumerated += f64::from(count) * (mask.count_ones() as f64).exp2();
                 }
-                work.pattern_units += enumerated / rows as f64;
+                work.pattern_enumerated += enumerated / rows as f64;
             } else {
                 leaf.at = pattern.masks.len() as u32;
                 leaf.len = masks.len() as u32;
                 pattern.masks.extend_from_slice(masks);
                 pattern.counts.extend_from_slice(counts);
-                work.pattern_units += masks.len() as f64;
+                work.pattern_scanned += masks.len() as f64;
             }
             if pattern.dense.len() * DENSE_ENTRY_BYTES + pattern.masks.len() * SPARSE_ENTRY_BYTES
                 > budget
             {
-                return None;
+                return (reached, None);
             }
         }
         pattern.leaves = leaves;
@@ -738,8 +789,8 @@ impl Counter {
         pattern.masks.shrink_to_fit();
         pattern.counts.shrink_to_fit();
         if pattern.bytes() > budget {
-            return None;
+            return (reached, None);
         }
-        Some((pattern, work))
+        (reached, Some((pattern, work)))
     }
 }
