@@ -15,6 +15,7 @@ use apportion::service::proto::{
 };
 use apportion::service::{Config, State};
 use ndarray::Array2;
+use prost::Message;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use tonic::transport::Channel;
@@ -24,7 +25,7 @@ const TASKS: usize = 16;
 
 #[derive(Clone)]
 enum Call {
-    Echo,
+    Echo(Vec<u8>),
     Explain(Box<proto::ExplainRequest>),
 }
 
@@ -47,9 +48,9 @@ async fn measure(channels: &[Channel], call: &Call, duration: Duration) -> Measu
             while Instant::now() < deadline {
                 let start = Instant::now();
                 match &call {
-                    Call::Echo => {
+                    Call::Echo(payload) => {
                         echo.echo(proto::EchoRequest {
-                            payload: b"ping".to_vec(),
+                            payload: payload.clone(),
                         })
                         .await
                         .expect("echo");
@@ -94,7 +95,11 @@ fn machine() -> String {
 
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
-    let round = Duration::from_millis(if quick { 1500 } else { 3000 });
+    // Short rounds, the cases taking turns, and the median per case: the
+    // shared machine's speed drifts by up to 2× over tens of seconds, and
+    // turns keep every case's rounds in the same conditions.
+    let round = Duration::from_millis(500);
+    let rounds = if quick { 3 } else { 9 };
     let runtime = tokio::runtime::Runtime::new().expect("runtime");
     runtime.block_on(async {
         let data_dir = std::env::temp_dir().join(format!("apportion-bench-{}", std::process::id()));
@@ -175,40 +180,57 @@ fn main() {
         };
         // The cases must take the paths they are named after.
         let mut explain = AttributionsClient::new(channels[0].clone());
+        let mut linear_bytes = 0;
         for (request, expected) in [
             (&linear_request, proto::Estimator::LinearExact),
             (&trees_request, proto::Estimator::TreeExact),
         ] {
-            let used = explain.explain(request.clone()).await.expect("explain").into_inner().estimator_used;
-            assert_eq!(used, expected as i32, "{} took another estimator", request.model_id);
+            let answer = explain.explain(request.clone()).await.expect("explain").into_inner();
+            assert_eq!(answer.estimator_used, expected as i32, "{} took another estimator", request.model_id);
+            if expected == proto::Estimator::LinearExact {
+                linear_bytes = request.encoded_len() + answer.encoded_len();
+            }
         }
+        // An echo carrying as many bytes as the logistic call does (request
+        // and answer), half each way: the stack's limit at that message size.
+        let sized = vec![7u8; linear_bytes / 2];
 
         let cases = [
-            ("Echo (the stack's limit)", Call::Echo),
+            ("Echo (the stack's limit)", Call::Echo(b"ping".to_vec())),
+            ("Echo, as many bytes as the logistic call", Call::Echo(sized)),
             ("Explain, 20-feature logistic, LINEAR_EXACT", Call::Explain(Box::new(linear_request))),
             ("Explain, demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT", Call::Explain(Box::new(trees_request))),
         ];
         println!("machine: {}", machine());
         println!(
-            "server and clients in one process; {TASKS} client tasks over {CHANNELS} channels; {compute_threads} compute threads; {:.1} s per case after a warm-up",
+            "server and clients in one process; {TASKS} client tasks over {CHANNELS} channels; {compute_threads} compute threads; medians of {rounds} rounds of {:.1} s per case, the cases taking turns, after a warm-up",
             round.as_secs_f64()
         );
         println!();
         println!("| case | requests/s | p50 ms | p99 ms | share of echo throughput |");
         println!("|---|---|---|---|---|");
-        let mut echo_rate = 0.0;
-        for (name, call) in cases {
-            measure(&channels, &call, Duration::from_millis(300)).await;
-            let m = measure(&channels, &call, round).await;
-            if matches!(call, Call::Echo) {
-                echo_rate = m.per_second;
+        for (_, call) in &cases {
+            measure(&channels, call, Duration::from_millis(300)).await;
+        }
+        let mut measured: Vec<Vec<Measured>> = cases.iter().map(|_| Vec::new()).collect();
+        for _ in 0..rounds {
+            for ((_, call), results) in cases.iter().zip(&mut measured) {
+                results.push(measure(&channels, call, round).await);
             }
+        }
+        let median = |results: &[Measured], field: fn(&Measured) -> f64| {
+            let mut values: Vec<f64> = results.iter().map(field).collect();
+            values.sort_by(f64::total_cmp);
+            values[values.len() / 2]
+        };
+        let echo_rate = median(&measured[0], |m| m.per_second);
+        for ((name, _), results) in cases.iter().zip(&measured) {
+            let rate = median(results, |m| m.per_second);
             println!(
-                "| {name} | {:.0} | {:.2} | {:.2} | {:.0}% |",
-                m.per_second,
-                m.p50_ms,
-                m.p99_ms,
-                100.0 * m.per_second / echo_rate
+                "| {name} | {rate:.0} | {:.2} | {:.2} | {:.0}% |",
+                median(results, |m| m.p50_ms),
+                median(results, |m| m.p99_ms),
+                100.0 * rate / echo_rate
             );
         }
         let _ = stop.send(());
