@@ -4,6 +4,8 @@
 //! figures in README.md come from this command; the machine is printed in
 //! the first line.
 
+mod support;
+
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -169,20 +171,6 @@ fn best_time<T>(repeats: usize, mut work: impl FnMut() -> T) -> (T, Duration) {
     (out.expect("at least one repeat"), best)
 }
 
-fn machine() -> String {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|s| {
-            s.lines()
-                .find(|l| l.starts_with("model name"))
-                .and_then(|l| l.split(':').nth(1))
-                .map(|m| m.trim().to_string())
-        })
-        .unwrap_or_else(|| "unknown CPU".into());
-    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
-    format!("{cpu}, {cores} cores")
-}
-
 fn relative_l2(estimate: &[f64], exact: &[f64]) -> f64 {
     let error: f64 = estimate
         .iter()
@@ -196,7 +184,7 @@ fn relative_l2(estimate: &[f64], exact: &[f64]) -> f64 {
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let repeats = if quick { 1 } else { 3 };
-    println!("machine: {}", machine());
+    println!("machine: {}", support::machine());
     println!();
 
     // 1. Exact tree algorithm vs brute-force enumeration.

@@ -6,6 +6,8 @@
 //! and clients share this process and the machine's cores, as stated in the
 //! output.
 
+mod support;
+
 use std::time::{Duration, Instant};
 
 use apportion::demo::{self, live};
@@ -77,20 +79,6 @@ async fn measure(channels: &[Channel], call: &Call, duration: Duration) -> Measu
         p50_ms: at(0.50),
         p99_ms: at(0.99),
     }
-}
-
-fn machine() -> String {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|s| {
-            s.lines()
-                .find(|l| l.starts_with("model name"))
-                .and_then(|l| l.split(':').nth(1))
-                .map(|m| m.trim().to_string())
-        })
-        .unwrap_or_else(|| "unknown CPU".into());
-    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
-    format!("{cpu}, {cores} cores")
 }
 
 fn main() {
@@ -201,7 +189,7 @@ fn main() {
             ("Explain, 20-feature logistic, LINEAR_EXACT", Call::Explain(Box::new(linear_request))),
             ("Explain, demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT", Call::Explain(Box::new(trees_request))),
         ];
-        println!("machine: {}", machine());
+        println!("machine: {}", support::machine());
         println!(
             "server and clients in one process; {TASKS} client tasks over {CHANNELS} channels; {compute_threads} compute threads; medians of {rounds} rounds of {:.1} s per case, the cases taking turns, after a warm-up",
             round.as_secs_f64()

@@ -6,6 +6,8 @@
 //! fewer repeats). The unit costs in `src/engine/estimate/tree/compiled.rs`
 //! are the fit printed in the second table.
 
+mod support;
+
 use std::time::{Duration, Instant};
 
 use apportion::engine::estimate::tree::{self, CompiledTrees, TreeWork};
@@ -172,20 +174,6 @@ fn median_time<T>(
     times[times.len() / 2]
 }
 
-fn machine() -> String {
-    let cpu = std::fs::read_to_string("/proc/cpuinfo")
-        .ok()
-        .and_then(|s| {
-            s.lines()
-                .find(|l| l.starts_with("model name"))
-                .and_then(|l| l.split(':').nth(1))
-                .map(|m| m.trim().to_string())
-        })
-        .unwrap_or_else(|| "unknown CPU".into());
-    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
-    format!("{cpu}, {cores} cores")
-}
-
 fn ms(duration: Duration) -> f64 {
     duration.as_secs_f64() * 1e3
 }
@@ -283,7 +271,7 @@ fn largest_difference(a: &[f64], b: &[f64]) -> f64 {
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let repeats = if quick { 3 } else { 9 };
-    println!("machine: {}", machine());
+    println!("machine: {}", support::machine());
     println!();
 
     // 1. 300 trees of depth 6 on 30 features, backgrounds of growing size.

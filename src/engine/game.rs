@@ -172,23 +172,8 @@ impl<'a> ModelGame<'a> {
             ));
         }
         let instances = match target {
-            Target::DatasetLoss { rows, labels } => {
-                if rows.ncols() != features || rows.nrows() == 0 {
-                    return Err(EngineError::new(
-                        "dataset",
-                        format!(
-                            "needs at least one row of {features} columns, got {} × {}",
-                            rows.nrows(),
-                            rows.ncols()
-                        ),
-                    ));
-                }
-                if labels.len() != rows.nrows() {
-                    return Err(EngineError::new(
-                        "dataset.labels",
-                        format!("{} labels for {} rows", labels.len(), rows.nrows()),
-                    ));
-                }
+            Target::DatasetLoss { rows, .. } => {
+                target.check_dataset(features)?;
                 rows.view()
             }
             _ => ArrayView2::from_shape((1, instance.len()), instance)

@@ -7,7 +7,7 @@
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::ArrayView2;
 
 use super::coalition::Coalition;
 use super::error::{EngineError, ErrorKind, Result};
@@ -504,8 +504,8 @@ fn validate(model: &PreparedModel, request: &Request) -> Result<()> {
             ));
         }
         Target::Loss { label } => check_label("label", *label, link)?,
-        Target::DatasetLoss { rows, labels } => {
-            check_dataset(rows, labels, inputs)?;
+        Target::DatasetLoss { labels, .. } => {
+            request.target.check_dataset(inputs)?;
             for label in labels {
                 check_label("dataset.labels", *label, link)?;
             }
@@ -564,26 +564,6 @@ fn validate_removal(model: &PreparedModel, removal: RemovalChoice) -> Result<Val
             ValidRemoval::ConditionalNeighbors { width }
         }
     })
-}
-
-fn check_dataset(rows: &Array2<f64>, labels: &[f64], inputs: usize) -> Result<()> {
-    if rows.ncols() != inputs || rows.nrows() == 0 {
-        return Err(EngineError::new(
-            "dataset",
-            format!(
-                "needs at least one row of {inputs} columns, got {} × {}",
-                rows.nrows(),
-                rows.ncols()
-            ),
-        ));
-    }
-    if labels.len() != rows.nrows() {
-        return Err(EngineError::new(
-            "dataset.labels",
-            format!("{} labels for {} rows", labels.len(), rows.nrows()),
-        ));
-    }
-    Ok(())
 }
 
 fn check_label(field: &str, label: f64, link: Link) -> Result<()> {

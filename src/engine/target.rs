@@ -7,6 +7,7 @@
 
 use ndarray::Array2;
 
+use super::error::{EngineError, Result};
 use super::model::Link;
 
 #[derive(Debug, Clone, PartialEq)]
@@ -23,6 +24,31 @@ pub enum Target {
 }
 
 impl Target {
+    /// For DATASET_LOSS, that the data set has at least one row of `inputs`
+    /// columns and one label per row; other targets carry no data set.
+    pub fn check_dataset(&self, inputs: usize) -> Result<()> {
+        let Target::DatasetLoss { rows, labels } = self else {
+            return Ok(());
+        };
+        if rows.ncols() != inputs || rows.nrows() == 0 {
+            return Err(EngineError::new(
+                "dataset",
+                format!(
+                    "needs at least one row of {inputs} columns, got {} × {}",
+                    rows.nrows(),
+                    rows.ncols()
+                ),
+            ));
+        }
+        if labels.len() != rows.nrows() {
+            return Err(EngineError::new(
+                "dataset.labels",
+                format!("{} labels for {} rows", labels.len(), rows.nrows()),
+            ));
+        }
+        Ok(())
+    }
+
     pub fn name(&self) -> &'static str {
         match self {
             Target::Output => "OUTPUT",
