@@ -254,6 +254,15 @@ async fn every_cell_of_the_grid_answers_and_the_registry_survives_a_restart() {
         .unwrap()
         .into_inner();
     assert_eq!(trees.model_kind, "trees");
+    // What preparation derived (here the stumps summarised against their
+    // background, and the background statistics) is reported as the
+    // server's own prepared model measures it (common practice, no source).
+    let prepared = server.registry.get("stumps", 1).unwrap();
+    assert_eq!(
+        trees.prepared_bytes,
+        prepared.prepared().derived_bytes() as u64
+    );
+    assert!(trees.prepared_bytes > 0 && trees.preparation_ms > 0.0);
 
     let x = vec![0.7, -1.2, 0.4, 1.5];
     let dataset = random_matrix(6, 4, 9);
