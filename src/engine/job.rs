@@ -198,6 +198,7 @@ pub struct Explanation {
 pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
     let prepared_at = Instant::now();
     validate(model, &request)?;
+    let removal_kind = request.removal.kind();
     let removal = validate_removal(model, request.removal)?;
     let instances = match &request.target {
         Target::DatasetLoss { rows, .. } => rows.nrows(),
@@ -211,13 +212,6 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         Structure::Linear(_) => ModelShape::Linear,
         Structure::Trees(_) => ModelShape::Trees,
         Structure::Opaque => ModelShape::Opaque,
-    };
-    let removal_kind = match removal {
-        ValidRemoval::Fixed(_) => RemovalKind::Fixed,
-        ValidRemoval::Marginal => RemovalKind::Marginal,
-        ValidRemoval::Independent { .. } => RemovalKind::Independent,
-        ValidRemoval::ConditionalGaussian { .. } => RemovalKind::ConditionalGaussian,
-        ValidRemoval::ConditionalNeighbors { .. } => RemovalKind::ConditionalNeighbors,
     };
     let chosen = plan::plan(&PlanInput {
         players: model.players().len(),
