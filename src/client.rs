@@ -234,6 +234,7 @@ pub fn registration(
         description: file.description,
         onnx_output,
         onnx_output_column,
+        class_index: None,
     })
 }
 

@@ -2,8 +2,10 @@
 //! [`Model`] interface: linear models here, ONNX graphs in the graph runtime
 //! (feature `onnx`). Tree ensembles are the engine's own structure
 //! ([`crate::engine::trees`]), since the exact tree algorithm reads their
-//! nodes; they are re-exported here beside the other kinds.
+//! nodes; they are re-exported here beside the other kinds. [`import`] reads
+//! XGBoost and LightGBM files into that native form.
 
+pub mod import;
 mod linear;
 #[cfg(feature = "onnx")]
 mod onnx;

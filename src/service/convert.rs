@@ -12,6 +12,7 @@ use super::status::ServiceError;
 use crate::engine::job::{self, RemovalChoice, Request};
 use crate::engine::{EstimatorKind, Kernel, Players, Summary, Target};
 use crate::model::Link;
+use crate::model::import::{self, ImportedTrees};
 use crate::reasons;
 use crate::registry::{
     Background, Entry, FeatureSpec, LinkSpec, MAX_BACKGROUND_BYTES, MAX_BACKGROUND_ROWS, ModelBody,
@@ -131,44 +132,79 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
     type Error = ServiceError;
 
     fn try_from(request: proto::RegisterModelRequest) -> Result<ModelSpec> {
-        let link = LinkSpec::from(known::<proto::Link>("link", request.link)?);
-        let model = match request.model {
-            Some(proto::register_model_request::Model::Linear(linear)) => ModelBody::Linear {
-                weights: linear.weights,
-                intercept: linear.intercept,
-            },
-            Some(proto::register_model_request::Model::Trees(ensemble)) => ModelBody::Trees {
-                trees: ensemble
-                    .trees
-                    .into_iter()
-                    .map(|tree| TreeBody {
-                        feature: tree.feature,
-                        threshold: tree.threshold,
-                        left: tree.left,
-                        right: tree.right,
-                        value: tree.value,
-                        missing_left: tree.missing_left,
-                    })
-                    .collect(),
-                base_score: ensemble.base_score,
-            },
+        use proto::register_model_request::Model;
+        let requested_link = known::<proto::Link>("link", request.link)?;
+        let mut features: Vec<FeatureSpec> = request
+            .features
+            .into_iter()
+            .map(FeatureSpec::from)
+            .collect();
+        let imported = matches!(
+            request.model,
+            Some(Model::XgboostJson(_)) | Some(Model::LightgbmText(_))
+        );
+        if request.class_index.is_some() && !imported {
+            return Err(ServiceError::invalid(
+                "class_index",
+                "applies to `xgboost_json` and `lightgbm_text` models only; leave it unset",
+            ));
+        }
+        let (model, link) = match request.model {
+            Some(Model::Linear(linear)) => (
+                ModelBody::Linear {
+                    weights: linear.weights,
+                    intercept: linear.intercept,
+                },
+                LinkSpec::from(requested_link),
+            ),
+            Some(Model::Trees(ensemble)) => (
+                ModelBody::Trees {
+                    trees: ensemble
+                        .trees
+                        .into_iter()
+                        .map(|tree| TreeBody {
+                            feature: tree.feature,
+                            threshold: tree.threshold,
+                            left: tree.left,
+                            right: tree.right,
+                            value: tree.value,
+                            missing_left: tree.missing_left,
+                        })
+                        .collect(),
+                    base_score: ensemble.base_score,
+                },
+                LinkSpec::from(requested_link),
+            ),
             #[cfg(feature = "onnx")]
-            Some(proto::register_model_request::Model::Onnx(graph)) => ModelBody::Onnx {
-                graph,
-                output: request.onnx_output,
-                column: request.onnx_output_column as usize,
-            },
+            Some(Model::Onnx(graph)) => (
+                ModelBody::Onnx {
+                    graph,
+                    output: request.onnx_output,
+                    column: request.onnx_output_column as usize,
+                },
+                LinkSpec::from(requested_link),
+            ),
             #[cfg(not(feature = "onnx"))]
-            Some(proto::register_model_request::Model::Onnx(_)) => {
+            Some(Model::Onnx(_)) => {
                 return Err(ServiceError::Unimplemented(
                     "onnx: this build has no ONNX runtime (built without the `onnx` feature)"
                         .to_string(),
                 ));
             }
+            Some(Model::XgboostJson(bytes)) => native_trees(
+                import::xgboost_json(&bytes, request.class_index)?,
+                requested_link,
+                &mut features,
+            )?,
+            Some(Model::LightgbmText(bytes)) => native_trees(
+                import::lightgbm_text(&bytes, request.class_index)?,
+                requested_link,
+                &mut features,
+            )?,
             None => {
                 return Err(ServiceError::invalid(
                     "model",
-                    "no model given; set one of `linear`, `trees` or `onnx`",
+                    "no model given; set one of `linear`, `trees`, `onnx`, `xgboost_json` or `lightgbm_text`",
                 ));
             }
         };
@@ -181,11 +217,7 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
         let (rows, cols) = checked_shape("background", &matrix)?;
         Ok(ModelSpec {
             model_id: request.model_id,
-            features: request
-                .features
-                .into_iter()
-                .map(FeatureSpec::from)
-                .collect(),
+            features,
             model,
             link,
             background: Background {
@@ -196,6 +228,54 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
             description: request.description,
         })
     }
+}
+
+/// An imported file as the native trees the registry stores (no new stored
+/// format). The objective decides the link; since LINK_IDENTITY is also the
+/// unset value, only an explicit LINK_LOGISTIC can contradict it. Feature
+/// names come from the file unless the request gives its own, one per input.
+fn native_trees(
+    imported: ImportedTrees,
+    requested_link: proto::Link,
+    features: &mut Vec<FeatureSpec>,
+) -> Result<(ModelBody, LinkSpec)> {
+    if requested_link == proto::Link::Logistic && imported.link != Link::Logistic {
+        return Err(ServiceError::invalid(
+            "link",
+            format!(
+                "is LINK_LOGISTIC, but the objective `{}` gives a margin on the identity scale; leave `link` unset",
+                imported.objective
+            ),
+        ));
+    }
+    let inputs = imported.feature_names.len();
+    if features.is_empty() {
+        *features = imported
+            .feature_names
+            .into_iter()
+            .map(|name| FeatureSpec {
+                name,
+                group: String::new(),
+                reason_code: String::new(),
+                reason_text: String::new(),
+            })
+            .collect();
+    } else if features.len() != inputs {
+        return Err(ServiceError::invalid(
+            "features",
+            format!(
+                "has {} entries, but the model file has {inputs} inputs; give one per input or none to use the file's names",
+                features.len()
+            ),
+        ));
+    }
+    Ok((
+        ModelBody::Trees {
+            trees: imported.trees,
+            base_score: imported.base_score,
+        },
+        LinkSpec::from(imported.link),
+    ))
 }
 
 /// Player names of a feature list, in attribution order. Registered
