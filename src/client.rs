@@ -61,8 +61,12 @@ pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
 /// [{ "feature", "threshold", "left", "right", "value", "missing_left" }] }`
 /// with the node arrays of the API's `Tree` message, or `{ "kind": "onnx",
 /// "path": "model.onnx", "output": "probabilities", "column": 1 }` (path
-/// relative to the model file; output and column as in the API). `link` defaults to
-/// `identity`; `group`, `reason_code`, `reason_text` and `description` may
+/// relative to the model file; output and column as in the API), or
+/// `{ "kind": "xgboost", "path": "model.json", "class_index": 2 }` (the JSON
+/// XGBoost's `save_model` writes) or `{ "kind": "lightgbm", "path":
+/// "model.txt" }` (LightGBM's `save_model` text), whose `class_index` is
+/// optional and whose `features` may be left out to take the file's names.
+/// `link` defaults to `identity` (for those two: as the objective says); `group`, `reason_code`, `reason_text` and `description` may
 /// be left out; `background` may be left out when a background file is
 /// given. Rows are arrays of numbers, `null` for a missing value.
 #[derive(Debug, Deserialize)]
@@ -74,6 +78,7 @@ pub struct ModelFile {
     pub description: String,
     #[serde(default = "identity")]
     pub link: String,
+    #[serde(default)]
     pub features: Vec<FeatureEntry>,
     pub model: ModelEntry,
     #[serde(default)]
@@ -116,6 +121,18 @@ pub enum ModelEntry {
         #[serde(default)]
         column: u32,
     },
+    /// An XGBoost JSON model file, its path relative to the model file.
+    Xgboost {
+        path: PathBuf,
+        #[serde(default)]
+        class_index: Option<u32>,
+    },
+    /// A LightGBM text model file, its path relative to the model file.
+    Lightgbm {
+        path: PathBuf,
+        #[serde(default)]
+        class_index: Option<u32>,
+    },
 }
 
 #[derive(Debug, Deserialize)]
@@ -156,7 +173,13 @@ pub fn registration(
             .into());
         }
     };
-    let cols = file.features.len();
+    // An imported model may leave its features to the file; the server
+    // checks the background's width against it then.
+    let cols = if file.features.is_empty() {
+        rows.first().map_or(0, Vec::len)
+    } else {
+        file.features.len()
+    };
     if let Some((at, row)) = rows.iter().enumerate().find(|(_, row)| row.len() != cols) {
         return Err(format!(
             "background row {}: has {} values for {cols} features",
@@ -173,17 +196,33 @@ pub fn registration(
             )
         })?;
     let (mut onnx_output, mut onnx_output_column) = (String::new(), 0);
+    let mut class_index = None;
+    let beside = |path: PathBuf| -> Result<Vec<u8>, Failure> {
+        let path = model_file.parent().unwrap_or(Path::new("")).join(path);
+        std::fs::read(&path).map_err(|e| format!("{}: cannot read: {e}", path.display()).into())
+    };
     let model = match file.model {
+        ModelEntry::Xgboost {
+            path,
+            class_index: class,
+        } => {
+            class_index = class;
+            proto::register_model_request::Model::XgboostJson(beside(path)?)
+        }
+        ModelEntry::Lightgbm {
+            path,
+            class_index: class,
+        } => {
+            class_index = class;
+            proto::register_model_request::Model::LightgbmText(beside(path)?)
+        }
         ModelEntry::Onnx {
             path,
             output,
             column,
         } => {
-            let path = model_file.parent().unwrap_or(Path::new("")).join(path);
-            let graph = std::fs::read(&path)
-                .map_err(|e| format!("{}: cannot read: {e}", path.display()))?;
             (onnx_output, onnx_output_column) = (output, column);
-            proto::register_model_request::Model::Onnx(graph)
+            proto::register_model_request::Model::Onnx(beside(path)?)
         }
         ModelEntry::Linear { weights, intercept } => {
             proto::register_model_request::Model::Linear(proto::LinearModel { weights, intercept })
@@ -234,7 +273,7 @@ pub fn registration(
         description: file.description,
         onnx_output,
         onnx_output_column,
-        class_index: None,
+        class_index,
     })
 }
 

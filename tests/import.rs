@@ -495,3 +495,40 @@ async fn refusals_name_their_field_and_register_nothing() {
     );
     server.stop().await;
 }
+
+/// `apportion register` model files of kind `xgboost` and `lightgbm`: the
+/// file's bytes and class choice reach the server, which takes the feature
+/// names from the model file when the model file gives none.
+#[tokio::test]
+async fn cli_model_files_register_library_files() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    let mut registry = server.registry_client();
+    let entries = [
+        (
+            "wine",
+            serde_json::json!({"kind": "lightgbm", "path": fixture_dir().join("lgb_wine.txt"), "class_index": 1}),
+            13,
+        ),
+        (
+            "cancer",
+            serde_json::json!({"kind": "xgboost", "path": fixture_dir().join("xgb_cancer.json")}),
+            30,
+        ),
+    ];
+    for (id, model, width) in entries {
+        let file = dir.path().join(format!("{id}.json"));
+        std::fs::write(
+            &file,
+            serde_json::json!({"model_id": id, "model": model, "background": [vec![1.0; width]]})
+                .to_string(),
+        )
+        .unwrap();
+        let request = apportion::client::registration(&file, None, None).unwrap();
+        assert_eq!(request.class_index, (id == "wine").then_some(1));
+        let info = registry.register_model(request).await.unwrap().into_inner();
+        assert_eq!(info.features.len(), width);
+        assert_eq!(info.model_kind, "trees");
+    }
+    server.stop().await;
+}
