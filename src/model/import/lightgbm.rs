@@ -50,7 +50,9 @@ pub fn lightgbm_text(bytes: &[u8], class_index: Option<u32>) -> Result<ImportedT
                 )));
             }
             blocks.push(HashMap::new());
-        } else if let Some((key, value)) = line.split_once('=') {
+        } else if !line.is_empty() {
+            // Flags such as `average_output` stand alone, without `=`.
+            let (key, value) = line.split_once('=').unwrap_or((line, ""));
             match blocks.last_mut() {
                 Some(block) => block.insert(key, value),
                 None => header.insert(key, value),
