@@ -7,11 +7,13 @@
 
 pub mod import;
 mod linear;
+mod nodes;
 #[cfg(feature = "onnx")]
 mod onnx;
 
 pub use crate::engine::model::{LinearForm, Link, Model, Structure, logistic};
 pub use crate::engine::trees::{Tree, TreeEnsemble};
 pub use linear::LinearModel;
+pub use nodes::TreeBody;
 #[cfg(feature = "onnx")]
 pub use onnx::OnnxModel;

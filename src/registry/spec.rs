@@ -6,6 +6,7 @@ use serde::{Deserialize, Serialize};
 
 use super::store;
 use crate::engine::Link;
+pub use crate::model::TreeBody;
 
 /// One input feature as registered.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -43,18 +44,6 @@ impl From<Link> for LinkSpec {
             Link::Logistic => LinkSpec::Logistic,
         }
     }
-}
-
-/// One regression tree as parallel node arrays (see [`Tree::try_new`]).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct TreeBody {
-    pub feature: Vec<i32>,
-    pub threshold: Vec<f64>,
-    pub left: Vec<i32>,
-    pub right: Vec<i32>,
-    pub value: Vec<f64>,
-    /// Empty means NaN goes left at every node.
-    pub missing_left: Vec<bool>,
 }
 
 /// The model itself.

@@ -8,7 +8,7 @@ use std::collections::HashMap;
 use super::{ImportedTrees, SourceNode, Split, build_tree, choose_class, negate, next_up};
 use crate::engine::error::{EngineError, Result};
 use crate::model::Link;
-use crate::registry::TreeBody;
+use crate::model::TreeBody;
 
 const FIELD: &str = "lightgbm_text";
 

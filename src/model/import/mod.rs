@@ -11,7 +11,7 @@ pub use xgboost::xgboost_json;
 
 use crate::engine::error::{EngineError, Result};
 use crate::model::Link;
-use crate::registry::TreeBody;
+use crate::model::TreeBody;
 
 /// A tree ensemble read from a library's file: output = base_score + Σ tree(x)
 /// is the library's raw margin (of `class_index` for a multi-class model).

@@ -7,7 +7,7 @@ use serde_json::Value;
 
 use super::{ImportedTrees, SourceNode, Split, build_tree, choose_class, negate};
 use crate::engine::error::{EngineError, Result};
-use crate::model::Link;
+use crate::model::{Link, TreeBody};
 
 const FIELD: &str = "xgboost_json";
 
@@ -154,7 +154,7 @@ pub fn xgboost_json(bytes: &[u8], class_index: Option<u32>) -> Result<ImportedTr
 }
 
 /// One tree's node arrays, checked, into a native tree.
-fn read_tree(t: usize, tree: &Value, inputs: usize) -> Result<crate::registry::TreeBody> {
+fn read_tree(t: usize, tree: &Value, inputs: usize) -> Result<TreeBody> {
     let at = |name: &str| format!("trees[{t}].{name}");
     let param = &tree["tree_param"];
     if let Some(size) = param.get("size_leaf_vector") {
