@@ -258,6 +258,7 @@ fn spec(model: &TreeEnsemble, background: &Array2<f64>) -> ModelSpec {
             values: background.iter().copied().collect(),
         },
         description: String::new(),
+        imported: None,
     }
 }
 

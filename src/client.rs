@@ -25,7 +25,7 @@ async fn connect(address: &str) -> Result<Channel, Failure> {
 
 /// What `models` and `register` print about one model version.
 fn info_json(m: &proto::ModelInfo) -> Value {
-    json!({
+    let mut info = json!({
         "model_id": m.model_id,
         "version": m.version,
         "model_kind": m.model_kind,
@@ -34,7 +34,15 @@ fn info_json(m: &proto::ModelInfo) -> Value {
         "row_cost_ns": m.row_cost_ns,
         "registered_unix_ms": m.registered_unix_ms,
         "checksum": m.checksum,
-    })
+    });
+    // Only imported models say where they came from, so native ones print
+    // as before.
+    if !m.import_format.is_empty() {
+        info["import_format"] = json!(m.import_format);
+        info["import_objective"] = json!(m.import_objective);
+        info["import_class_index"] = json!(m.import_class_index);
+    }
+    info
 }
 
 /// Every registered model version, one JSON object each.

@@ -586,3 +586,137 @@ async fn cli_model_files_register_library_files() {
     }
     server.stop().await;
 }
+
+/// The objective as the file states it, read here straight from the file
+/// format (XGBoost's JSON schema: `learner.objective.name`; LightGBM's text
+/// model: the header line `objective=`), not through the importers.
+fn objective_in_file(file: &str) -> String {
+    let bytes = model_bytes(file);
+    if file.ends_with(".json") {
+        let json: Value = serde_json::from_slice(&bytes).unwrap();
+        json["learner"]["objective"]["name"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    } else {
+        String::from_utf8(bytes)
+            .unwrap()
+            .lines()
+            .find_map(|line| line.strip_prefix("objective="))
+            .unwrap()
+            .to_string()
+    }
+}
+
+/// ModelInfo says what was imported (issue 7, part 5): the `model` field the
+/// file came in, the objective the file names and the class whose margin is
+/// served; a native registration says nothing. The record keeps it across a
+/// restart with the same checksum (common practice, no source).
+#[tokio::test]
+async fn model_info_says_what_was_imported_and_keeps_it_across_a_restart() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    let mut registry = server.registry_client();
+
+    let mut wine = request(
+        "xgb-wine",
+        Body::XgboostJson(model_bytes("xgb_wine.json")),
+        13,
+    );
+    wine.class_index = Some(2);
+    // Unset: the positive class of a binary model.
+    let cancer = request(
+        "lgb-cancer",
+        Body::LightgbmText(model_bytes("lgb_cancer.txt")),
+        30,
+    );
+    let native = proto::RegisterModelRequest {
+        features: vec![proto::Feature {
+            name: "x0".to_string(),
+            ..Default::default()
+        }],
+        ..request(
+            "native",
+            Body::Trees(proto::TreeEnsemble {
+                trees: vec![proto::Tree {
+                    feature: vec![0, -1, -1],
+                    threshold: vec![0.0, 0.0, 0.0],
+                    left: vec![1, -1, -1],
+                    right: vec![2, -1, -1],
+                    value: vec![0.0, -1.0, 1.0],
+                    missing_left: vec![],
+                }],
+                base_score: 0.0,
+            }),
+            1,
+        )
+    };
+    let expected = [
+        (
+            "xgb-wine",
+            "xgboost_json",
+            objective_in_file("xgb_wine.json"),
+            Some(2),
+        ),
+        (
+            "lgb-cancer",
+            "lightgbm_text",
+            objective_in_file("lgb_cancer.txt"),
+            Some(1),
+        ),
+        ("native", "", String::new(), None),
+    ];
+    assert_eq!(expected[0].2, "multi:softprob");
+    assert_eq!(expected[1].2, "binary sigmoid:1");
+    for (request, (id, format, objective, class)) in
+        [wine, cancer, native].into_iter().zip(&expected)
+    {
+        let info = registry.register_model(request).await.unwrap().into_inner();
+        assert_eq!(info.model_id, *id);
+        assert_eq!(info.model_kind, "trees", "{id}");
+        assert_eq!(info.import_format, *format, "{id}");
+        assert_eq!(info.import_objective, *objective, "{id}");
+        assert_eq!(info.import_class_index, *class, "{id}");
+    }
+
+    // The thin client's `models` prints them for imported models only.
+    let printed = apportion::client::models(&server.address.to_string())
+        .await
+        .unwrap();
+    for (id, format, objective, class) in &expected {
+        let line = printed.iter().find(|m| m["model_id"] == *id).unwrap();
+        if format.is_empty() {
+            assert!(line.get("import_format").is_none(), "{line}");
+        } else {
+            assert_eq!(line["import_format"], *format, "{line}");
+            assert_eq!(line["import_objective"], *objective, "{line}");
+            assert_eq!(line["import_class_index"], class.unwrap(), "{line}");
+        }
+    }
+
+    let before = registry
+        .list_models(proto::ListModelsRequest {})
+        .await
+        .unwrap()
+        .into_inner()
+        .models;
+    server.stop().await;
+    let server = support::start(dir.path()).await;
+    let after = server
+        .registry_client()
+        .list_models(proto::ListModelsRequest {})
+        .await
+        .unwrap()
+        .into_inner()
+        .models;
+    assert_eq!(before.len(), 3);
+    // Preparation is timed afresh on load; everything else is as registered.
+    let registered = |info: &proto::ModelInfo| proto::ModelInfo {
+        preparation_ms: 0.0,
+        ..info.clone()
+    };
+    for (a, b) in before.iter().zip(&after) {
+        assert_eq!(registered(a), registered(b));
+    }
+    server.stop().await;
+}

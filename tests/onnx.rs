@@ -359,6 +359,7 @@ fn exported_scikit_learn_models_predict_as_onnxruntime_does() {
                 values: rows.iter().flatten().copied().collect(),
             },
             description: String::new(),
+            imported: None,
         };
         let info = registry.register(spec).unwrap();
         let entry = registry.get(&info.model_id, info.version).unwrap();

@@ -9,8 +9,8 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use apportion::registry::{
-    Background, FeatureSpec, LinkSpec, ModelBody, ModelInfo, ModelSpec, Registry, RegistryError,
-    TreeBody, data_dir_from, spec_checksum,
+    Background, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, ModelBody, ModelInfo, ModelSpec,
+    Registry, RegistryError, TreeBody, data_dir_from, spec_checksum,
 };
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -60,6 +60,7 @@ fn linear_spec(model_id: &str, seed: u64) -> ModelSpec {
         link: LinkSpec::Logistic,
         background: random_background(&mut rng, 7, cols),
         description: format!("linear model {model_id}"),
+        imported: None,
     }
 }
 
@@ -96,6 +97,7 @@ fn tree_spec(model_id: &str, seed: u64) -> ModelSpec {
         link: LinkSpec::Identity,
         background: random_background(&mut rng, 9, 3),
         description: String::new(),
+        imported: None,
     }
 }
 
@@ -551,6 +553,108 @@ fn the_checksum_depends_on_the_content_only() {
     }
     assert_ne!(spec_checksum(&changed).unwrap(), expected);
     assert_ne!(registry.register(changed).unwrap().checksum, expected);
+}
+
+/// A record as the registry wrote it before specs could say where an
+/// imported model came from: compact JSON, spec fields in declaration order,
+/// no `imported` member. Written out by hand so the check does not depend on
+/// today's serialisation.
+const RECORD_WITHOUT_IMPORT_SPEC: &str = concat!(
+    r#"{"model_id":"legacy","features":["#,
+    r#"{"name":"income","group":"","reason_code":"R1","reason_text":"income is low"},"#,
+    r#"{"name":"debt","group":"","reason_code":"","reason_text":""}],"#,
+    r#""model":{"kind":"trees","trees":[{"feature":[1,-1,-1],"threshold":[0.25,0.0,0.0],"#,
+    r#""left":[1,-1,-1],"right":[2,-1,-1],"value":[0.0,-1.5,2.0],"missing_left":[true,false,false]}],"#,
+    r#""base_score":0.125},"link":"logistic","#,
+    r#""background":{"rows":2,"cols":2,"values":[1.0,null,-0.5,3.0]},"#,
+    r#""description":"written before imports were recorded"}"#
+);
+
+#[test]
+fn a_record_written_without_the_import_field_loads_unchanged() {
+    // The record layout in the registry module, as written before the
+    // `imported` member existed: it must load as a native model, keep its
+    // checksum, and serialise back to the very same bytes (the serde
+    // default and skip; common practice, no source).
+    let spec_text = RECORD_WITHOUT_IMPORT_SPEC;
+    let checksum: String = Sha256::digest(spec_text.as_bytes())
+        .iter()
+        .map(|byte| format!("{byte:02x}"))
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let path = record_path(dir.path(), "legacy", 1);
+    fs::create_dir_all(path.parent().unwrap()).unwrap();
+    fs::write(
+        &path,
+        format!(
+            r#"{{"format":"apportion-model","format_version":1,"model_id":"legacy","version":1,"checksum":"{checksum}","registered_unix_ms":1764000000000,"row_cost_ns":40.0,"spec":{spec_text}}}"#
+        ),
+    )
+    .unwrap();
+
+    let (registry, problems) = Registry::open(dir.path()).unwrap();
+    assert!(problems.is_empty(), "{problems:?}");
+    let entry = registry.get("legacy", 1).unwrap();
+    assert_eq!(entry.info().imported, None);
+    assert_eq!(entry.info().checksum, checksum);
+    assert_eq!(entry.info().model_kind, "trees");
+    let spec = entry.spec();
+    assert_eq!(spec.imported, None);
+    assert_eq!(serde_json::to_string(&spec).unwrap(), spec_text);
+    assert_eq!(spec_checksum(&spec).unwrap(), checksum);
+
+    // Registered again today, the same spec gets the same checksum and a
+    // record with no `imported` member.
+    let again = registry.register(spec).unwrap();
+    assert_eq!(again.checksum, checksum);
+    let text = fs::read_to_string(record_path(dir.path(), "legacy", again.version)).unwrap();
+    let record: serde_json::Value = serde_json::from_str(&text).unwrap();
+    assert!(record["spec"].get("imported").is_none(), "{text}");
+}
+
+#[test]
+fn import_provenance_is_stored_with_the_record_and_only_on_trees() {
+    // The record layout in the registry module: `imported` is part of the
+    // spec, so of its checksum, and comes back after a restart.
+    let dir = tempfile::tempdir().unwrap();
+    let imported = ImportSpec {
+        format: ImportFormat::LightgbmText,
+        objective: "binary sigmoid:1".to_string(),
+        class_index: 1,
+    };
+    let mut spec = tree_spec("imported", 71);
+    spec.imported = Some(imported.clone());
+    let info = {
+        let (registry, _) = Registry::open(dir.path()).unwrap();
+        let info = registry.register(spec.clone()).unwrap();
+        assert_eq!(info.imported.as_ref(), Some(&imported));
+        assert_ne!(
+            info.checksum,
+            spec_checksum(&tree_spec("imported", 71)).unwrap(),
+            "the provenance is part of the content"
+        );
+        info
+    };
+    let text = fs::read_to_string(record_path(dir.path(), "imported", 1)).unwrap();
+    let record: serde_json::Value = serde_json::from_str(&text).unwrap();
+    assert_eq!(
+        record["spec"]["imported"],
+        serde_json::json!({"format": "lightgbm_text", "objective": "binary sigmoid:1", "class_index": 1})
+    );
+    let (registry, problems) = Registry::open(dir.path()).unwrap();
+    assert!(problems.is_empty(), "{problems:?}");
+    let reopened = registry.get("imported", 1).unwrap();
+    assert_eq!(as_registered(reopened.info()), as_registered(&info));
+    assert_eq!(reopened.spec(), spec);
+
+    // Both importers give trees: provenance on a linear model is refused.
+    let mut linear = linear_spec("not-imported", 72);
+    linear.imported = Some(imported);
+    match registry.register(linear) {
+        Err(RegistryError::Invalid(error)) => assert_eq!(error.field, "imported"),
+        other => panic!("expected a refusal naming `imported`, got {other:?}"),
+    }
+    assert!(registry.get("not-imported", 0).is_err());
 }
 
 #[test]

@@ -13,7 +13,9 @@
 //!
 //! A record is one compact JSON object:
 //! `{ "format": "apportion-model", "format_version": 1, "model_id", "version",
-//! "checksum", "registered_unix_ms", "row_cost_ns", "spec": ModelSpec }`.
+//! "checksum", "registered_unix_ms", "row_cost_ns", "spec": ModelSpec }`;
+//! the spec's `imported` member is present only for a model read from a
+//! library's file.
 //! `checksum` is the lower-case hex sha256 of the spec's compact JSON
 //! ([`spec_checksum`]) and is verified on load. The counter is
 //! `{ "format": "apportion-version-counter", "format_version": 1, "model_id",
@@ -38,7 +40,9 @@ mod spec;
 mod store;
 mod validate;
 
-pub use spec::{Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, TreeBody};
+pub use spec::{
+    Background, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, ModelBody, ModelSpec, TreeBody,
+};
 pub use store::{
     FORMAT_VERSION, MAX_RECORD_FILE_BYTES, data_dir_from, default_data_dir, spec_checksum,
 };
@@ -82,6 +86,9 @@ pub struct ModelInfo {
     /// See [`spec_checksum`].
     pub checksum: String,
     pub description: String,
+    /// The file, objective and class an imported model was read from; `None`
+    /// for a native registration.
+    pub imported: Option<ImportSpec>,
 }
 
 /// One registered version, ready to explain with. Shared as `Arc<Entry>`;
@@ -154,6 +161,7 @@ impl Entry {
                 values: background.iter().copied().collect(),
             },
             description: self.info.description.clone(),
+            imported: self.info.imported.clone(),
         }
     }
 }

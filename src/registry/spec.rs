@@ -95,6 +95,38 @@ impl PartialEq for Background {
     }
 }
 
+/// The library file an imported model was read from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ImportFormat {
+    /// The JSON XGBoost's `save_model` writes.
+    XgboostJson,
+    /// The text LightGBM's `save_model` writes.
+    LightgbmText,
+}
+
+impl ImportFormat {
+    /// The name the API and the record use (the proto `oneof model` field).
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ImportFormat::XgboostJson => "xgboost_json",
+            ImportFormat::LightgbmText => "lightgbm_text",
+        }
+    }
+}
+
+/// Where an imported model came from. Imported models are stored as native
+/// trees, so without this nothing would say which file, objective and class
+/// the stored margin stands for.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ImportSpec {
+    pub format: ImportFormat,
+    /// The objective as the file names it.
+    pub objective: String,
+    /// The class whose margin was imported (0 for one output).
+    pub class_index: u32,
+}
+
 /// A registration request.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ModelSpec {
@@ -104,4 +136,10 @@ pub struct ModelSpec {
     pub link: LinkSpec,
     pub background: Background,
     pub description: String,
+    /// Set for a model read from a library's file. Absent, it is not written
+    /// at all, so records of native models keep the bytes, and so the
+    /// checksums, they had before the field existed; records written before
+    /// it existed read back as native.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub imported: Option<ImportSpec>,
 }

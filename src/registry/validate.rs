@@ -128,6 +128,17 @@ impl Validated {
 pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Validated> {
     check_model_id(&spec.model_id)?;
     check_text("description", &spec.description, MAX_DESCRIPTION_BYTES)?;
+    if let Some(imported) = &spec.imported {
+        check_text("imported.objective", &imported.objective, MAX_TEXT_BYTES)?;
+        // Both importers give trees; anything else is a record edited by hand.
+        if !matches!(spec.model, ModelBody::Trees { .. }) {
+            return Err(EngineError::new(
+                "imported",
+                "is set, but the model is not trees; only tree ensembles are imported from library files",
+            )
+            .into());
+        }
+    }
     if spec.features.len() > MAX_FEATURES {
         return Err(too_large(
             "features",
@@ -165,6 +176,7 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
         model: body,
         background,
         description,
+        imported,
         ..
     } = spec;
     let background_rows = background.rows;
@@ -186,6 +198,7 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
             registered_unix_ms: 0,
             checksum,
             description,
+            imported,
         },
         body,
         model,

@@ -15,8 +15,8 @@ use crate::model::Link;
 use crate::model::import::{self, ImportedTrees};
 use crate::reasons;
 use crate::registry::{
-    Background, Entry, FeatureSpec, LinkSpec, MAX_BACKGROUND_BYTES, MAX_BACKGROUND_ROWS, ModelBody,
-    ModelInfo, ModelSpec, TreeBody,
+    Background, Entry, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, MAX_BACKGROUND_BYTES,
+    MAX_BACKGROUND_ROWS, ModelBody, ModelInfo, ModelSpec, TreeBody,
 };
 
 /// Evaluation cap when the request gives none.
@@ -149,13 +149,14 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                 "applies to `xgboost_json` and `lightgbm_text` models only; leave it unset",
             ));
         }
-        let (model, link) = match request.model {
+        let (model, link, imported) = match request.model {
             Some(Model::Linear(linear)) => (
                 ModelBody::Linear {
                     weights: linear.weights,
                     intercept: linear.intercept,
                 },
                 LinkSpec::from(requested_link),
+                None,
             ),
             Some(Model::Trees(ensemble)) => (
                 ModelBody::Trees {
@@ -174,6 +175,7 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                     base_score: ensemble.base_score,
                 },
                 LinkSpec::from(requested_link),
+                None,
             ),
             #[cfg(feature = "onnx")]
             Some(Model::Onnx(graph)) => (
@@ -183,6 +185,7 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                     column: request.onnx_output_column as usize,
                 },
                 LinkSpec::from(requested_link),
+                None,
             ),
             #[cfg(not(feature = "onnx"))]
             Some(Model::Onnx(_)) => {
@@ -192,11 +195,13 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                 ));
             }
             Some(Model::XgboostJson(bytes)) => native_trees(
+                ImportFormat::XgboostJson,
                 import::xgboost_json(&bytes, request.class_index)?,
                 requested_link,
                 &mut features,
             )?,
             Some(Model::LightgbmText(bytes)) => native_trees(
+                ImportFormat::LightgbmText,
                 import::lightgbm_text(&bytes, request.class_index)?,
                 requested_link,
                 &mut features,
@@ -226,6 +231,7 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                 values: matrix.values,
             },
             description: request.description,
+            imported,
         })
     }
 }
@@ -234,11 +240,13 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
 /// format). The objective decides the link; since LINK_IDENTITY is also the
 /// unset value, only an explicit LINK_LOGISTIC can contradict it. Feature
 /// names come from the file unless the request gives its own, one per input.
+/// What was read (format, objective, class) is kept with the registration.
 fn native_trees(
+    format: ImportFormat,
     imported: ImportedTrees,
     requested_link: proto::Link,
     features: &mut Vec<FeatureSpec>,
-) -> Result<(ModelBody, LinkSpec)> {
+) -> Result<(ModelBody, LinkSpec, Option<ImportSpec>)> {
     if requested_link == proto::Link::Logistic && imported.link != Link::Logistic {
         return Err(ServiceError::invalid(
             "link",
@@ -275,6 +283,11 @@ fn native_trees(
             base_score: imported.base_score,
         },
         LinkSpec::from(imported.link),
+        Some(ImportSpec {
+            format,
+            objective: imported.objective,
+            class_index: imported.class_index,
+        }),
     ))
 }
 
@@ -304,6 +317,17 @@ impl From<&ModelInfo> for proto::ModelInfo {
             players: player_names(&info.features),
             preparation_ms: info.preparation_ms,
             prepared_bytes: info.prepared_bytes,
+            import_format: info
+                .imported
+                .as_ref()
+                .map(|imported| imported.format.as_str().to_string())
+                .unwrap_or_default(),
+            import_objective: info
+                .imported
+                .as_ref()
+                .map(|imported| imported.objective.clone())
+                .unwrap_or_default(),
+            import_class_index: info.imported.as_ref().map(|imported| imported.class_index),
         }
     }
 }
