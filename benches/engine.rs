@@ -18,7 +18,7 @@ use apportion::engine::{
     CachedGame, Coalition, ModelGame, Players, PreparedModel, Removal, Request, Summary, Target,
     prepare,
 };
-use apportion::model::{Link, Model, Tree, TreeEnsemble};
+use apportion::model::{Link, Model, Tree, TreeBody, TreeEnsemble};
 use ndarray::{Array2, ArrayView2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -58,54 +58,32 @@ fn peak_bytes<T>(work: impl FnOnce() -> T) -> (T, usize) {
     (out, PEAK.load(Ordering::Relaxed) - before)
 }
 
-/// Node arrays of a tree being grown, in `Tree::try_new`'s order.
-#[derive(Default)]
-struct Nodes {
-    feature: Vec<i32>,
-    threshold: Vec<f64>,
-    left: Vec<i32>,
-    right: Vec<i32>,
-    value: Vec<f64>,
-    missing_left: Vec<bool>,
-}
-
-impl Nodes {
-    /// Grows a complete subtree of `depth` and returns its root.
-    fn grow(&mut self, rng: &mut ChaCha8Rng, depth: usize, inputs: usize) -> i32 {
-        let node = self.feature.len();
-        self.feature.push(-1);
-        self.threshold.push(0.0);
-        self.left.push(-1);
-        self.right.push(-1);
-        self.value.push(0.0);
-        self.missing_left.push(rng.random_bool(0.5));
-        if depth == 0 {
-            self.value[node] = rng.random_range(-1.0..1.0);
-        } else {
-            self.feature[node] = rng.random_range(0..inputs as i32);
-            self.threshold[node] = rng.random_range(-1.0..1.0);
-            self.left[node] = self.grow(rng, depth - 1, inputs);
-            self.right[node] = self.grow(rng, depth - 1, inputs);
-        }
-        node as i32
+/// Grows a complete subtree of `depth` and returns its root.
+fn grow(nodes: &mut TreeBody, rng: &mut ChaCha8Rng, depth: usize, inputs: usize) -> i32 {
+    let node = nodes.feature.len();
+    nodes.feature.push(-1);
+    nodes.threshold.push(0.0);
+    nodes.left.push(-1);
+    nodes.right.push(-1);
+    nodes.value.push(0.0);
+    nodes.missing_left.push(rng.random_bool(0.5));
+    if depth == 0 {
+        nodes.value[node] = rng.random_range(-1.0..1.0);
+    } else {
+        nodes.feature[node] = rng.random_range(0..inputs as i32);
+        nodes.threshold[node] = rng.random_range(-1.0..1.0);
+        nodes.left[node] = grow(nodes, rng, depth - 1, inputs);
+        nodes.right[node] = grow(nodes, rng, depth - 1, inputs);
     }
+    node as i32
 }
 
 /// A random complete tree of `depth` over `inputs` features (bench data
 /// only; no check value depends on it).
 fn random_tree(rng: &mut ChaCha8Rng, depth: usize, inputs: usize) -> Tree {
-    let mut nodes = Nodes::default();
-    nodes.grow(rng, depth, inputs);
-    let Nodes {
-        feature,
-        threshold,
-        left,
-        right,
-        value,
-        missing_left,
-    } = nodes;
-    Tree::try_new(feature, threshold, left, right, value, missing_left, inputs)
-        .expect("generated trees are valid")
+    let mut nodes = TreeBody::default();
+    grow(&mut nodes, rng, depth, inputs);
+    nodes.into_tree(inputs).expect("generated trees are valid")
 }
 
 fn random_ensemble(seed: u64, trees: usize, depth: usize, inputs: usize) -> TreeEnsemble {

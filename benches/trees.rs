@@ -14,7 +14,7 @@ use apportion::engine::estimate::tree::{self, CompiledTrees, TreeWork};
 use apportion::engine::estimate::{self as estimators};
 use apportion::engine::removal::Marginal;
 use apportion::engine::{CachedGame, ModelGame, Players, Summary, Target};
-use apportion::model::{Link, Model, Tree, TreeEnsemble};
+use apportion::model::{Link, Model, TreeEnsemble};
 use apportion::registry::{
     Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, Registry, TreeBody,
 };
@@ -48,75 +48,62 @@ fn background_rows(seed: u64, rows: usize) -> Array2<f64> {
     out
 }
 
-/// Node arrays of a tree being grown, in `Tree::try_new`'s order.
-#[derive(Default)]
-struct Nodes {
-    feature: Vec<i32>,
-    threshold: Vec<f64>,
-    left: Vec<i32>,
-    right: Vec<i32>,
-    value: Vec<f64>,
-    missing_left: Vec<bool>,
-}
-
-impl Nodes {
-    /// A complete subtree of `depth` whose thresholds are values the rows
-    /// reaching the node take at its feature, as a trained tree's are.
-    fn grow(
-        &mut self,
-        rng: &mut ChaCha8Rng,
-        depth: usize,
-        data: &Array2<f64>,
-        reach: &[usize],
-        features: usize,
-    ) -> i32 {
-        let node = self.feature.len();
-        self.feature.push(-1);
-        self.threshold.push(0.0);
-        self.left.push(-1);
-        self.right.push(-1);
-        self.value.push(0.1 * rng.random_range(-1.0..1.0));
-        self.missing_left.push(rng.random_bool(0.5));
-        if depth == 0 {
-            return node as i32;
-        }
-        let feature = rng.random_range(0..features);
-        let mut pool: &[usize] = if reach.len() >= 2 { reach } else { &[] };
-        let mut attempts = 0;
-        let threshold = loop {
-            // Rows sent here by a missing direction may all lack the
-            // feature: then draw from all the data.
-            attempts += 1;
-            if attempts > 32 {
-                pool = &[];
-            }
-            let row = if pool.is_empty() {
-                rng.random_range(0..data.nrows())
-            } else {
-                pool[rng.random_range(0..pool.len())]
-            };
-            let value = data[[row, feature]];
-            if !value.is_nan() {
-                break value;
-            }
-        };
-        let missing_left = self.missing_left[node];
-        let goes_left = |row: &usize| {
-            let x = data[[*row, feature]];
-            if x.is_nan() {
-                missing_left
-            } else {
-                x < threshold
-            }
-        };
-        let (left_rows, right_rows): (Vec<usize>, Vec<usize>) =
-            reach.iter().partition(|r| goes_left(r));
-        self.feature[node] = feature as i32;
-        self.threshold[node] = threshold;
-        self.left[node] = self.grow(rng, depth - 1, data, &left_rows, features);
-        self.right[node] = self.grow(rng, depth - 1, data, &right_rows, features);
-        node as i32
+/// A complete subtree of `depth` whose thresholds are values the rows
+/// reaching the node take at its feature, as a trained tree's are.
+fn grow(
+    nodes: &mut TreeBody,
+    rng: &mut ChaCha8Rng,
+    depth: usize,
+    data: &Array2<f64>,
+    reach: &[usize],
+    features: usize,
+) -> i32 {
+    let node = nodes.feature.len();
+    nodes.feature.push(-1);
+    nodes.threshold.push(0.0);
+    nodes.left.push(-1);
+    nodes.right.push(-1);
+    nodes.value.push(0.1 * rng.random_range(-1.0..1.0));
+    nodes.missing_left.push(rng.random_bool(0.5));
+    if depth == 0 {
+        return node as i32;
     }
+    let feature = rng.random_range(0..features);
+    let mut pool: &[usize] = if reach.len() >= 2 { reach } else { &[] };
+    let mut attempts = 0;
+    let threshold = loop {
+        // Rows sent here by a missing direction may all lack the
+        // feature: then draw from all the data.
+        attempts += 1;
+        if attempts > 32 {
+            pool = &[];
+        }
+        let row = if pool.is_empty() {
+            rng.random_range(0..data.nrows())
+        } else {
+            pool[rng.random_range(0..pool.len())]
+        };
+        let value = data[[row, feature]];
+        if !value.is_nan() {
+            break value;
+        }
+    };
+    let missing_left = nodes.missing_left[node];
+    let goes_left = |row: &usize| {
+        let x = data[[*row, feature]];
+        if x.is_nan() {
+            missing_left
+        } else {
+            x < threshold
+        }
+    };
+    let (left_rows, right_rows): (Vec<usize>, Vec<usize>) =
+        reach.iter().partition(|r| goes_left(r));
+    nodes.feature[node] = feature as i32;
+    nodes.threshold[node] = threshold;
+    nodes.left[node] = grow(nodes, rng, depth - 1, data, &left_rows, features);
+    nodes.right[node] = grow(nodes, rng, depth - 1, data, &right_rows, features);
+    node as i32
 }
 
 /// `trees` complete trees of `depth` with thresholds from `data`.
@@ -131,26 +118,11 @@ fn ensemble(seed: u64, trees: usize, depth: usize, data: &Array2<f64>) -> TreeEn
                 .copied()
                 .filter(|_| rng.random_bool(0.5))
                 .collect();
-            let mut nodes = Nodes::default();
-            nodes.grow(&mut rng, depth, data, &reach, FEATURES);
-            let Nodes {
-                feature,
-                threshold,
-                left,
-                right,
-                value,
-                missing_left,
-            } = nodes;
-            Tree::try_new(
-                feature,
-                threshold,
-                left,
-                right,
-                value,
-                missing_left,
-                FEATURES,
-            )
-            .expect("generated trees are valid")
+            let mut nodes = TreeBody::default();
+            grow(&mut nodes, &mut rng, depth, data, &reach, FEATURES);
+            nodes
+                .into_tree(FEATURES)
+                .expect("generated trees are valid")
         })
         .collect();
     TreeEnsemble::try_new(trees, 0.0, Link::Identity, FEATURES).expect("valid ensemble")
@@ -212,31 +184,7 @@ fn fit(columns: &[Vec<f64>], times: &[f64]) -> Vec<f64> {
 /// Largest absolute difference between two value vectors.
 /// The registration of `model` over `background`, as a client would send it.
 fn spec(model: &TreeEnsemble, background: &Array2<f64>) -> ModelSpec {
-    let trees = model
-        .trees()
-        .iter()
-        .map(|tree| {
-            let nodes = 0..tree.nodes();
-            let leaf = |node: usize| tree.is_leaf(node);
-            TreeBody {
-                feature: nodes
-                    .clone()
-                    .map(|n| if leaf(n) { -1 } else { tree.feature(n) as i32 })
-                    .collect(),
-                threshold: nodes.clone().map(|n| tree.threshold(n)).collect(),
-                left: nodes
-                    .clone()
-                    .map(|n| if leaf(n) { -1 } else { tree.left(n) as i32 })
-                    .collect(),
-                right: nodes
-                    .clone()
-                    .map(|n| if leaf(n) { -1 } else { tree.right(n) as i32 })
-                    .collect(),
-                value: nodes.clone().map(|n| tree.value(n)).collect(),
-                missing_left: nodes.map(|n| tree.missing_left(n)).collect(),
-            }
-        })
-        .collect();
+    let trees = model.trees().iter().map(TreeBody::from).collect();
     ModelSpec {
         model_id: "bench-trees".to_string(),
         features: (0..FEATURES)
@@ -435,20 +383,11 @@ fn main() {
         let mut rng = ChaCha8Rng::seed_from_u64(21);
         let trees = (0..100)
             .map(|_| {
-                let mut nodes = Nodes::default();
+                let mut nodes = TreeBody::default();
                 let reach: Vec<usize> =
                     (0..wide.nrows()).filter(|_| rng.random_bool(0.5)).collect();
-                nodes.grow(&mut rng, 6, &wide, &reach, p);
-                let Nodes {
-                    feature,
-                    threshold,
-                    left,
-                    right,
-                    value,
-                    missing_left,
-                } = nodes;
-                Tree::try_new(feature, threshold, left, right, value, missing_left, p)
-                    .expect("valid")
+                grow(&mut nodes, &mut rng, 6, &wide, &reach, p);
+                nodes.into_tree(p).expect("valid")
             })
             .collect();
         TreeEnsemble::try_new(trees, 0.0, Link::Identity, p).expect("valid ensemble")

@@ -13,7 +13,7 @@ use std::time::{Duration, Instant};
 use apportion::engine::estimate::EstimatorKind;
 use apportion::engine::{Model, Players, PreparedModel, Request, Summary, prepare};
 use apportion::model::import::{self, ImportedTrees};
-use apportion::model::{Link, Tree, TreeEnsemble};
+use apportion::model::{Link, TreeEnsemble};
 use apportion::service::proto::{self, register_model_request::Model as Body};
 use ndarray::Array2;
 use serde_json::Value;
@@ -75,16 +75,9 @@ fn ensemble(imported: &ImportedTrees) -> TreeEnsemble {
         .trees
         .iter()
         .map(|t| {
-            Tree::try_new(
-                t.feature.clone(),
-                t.threshold.clone(),
-                t.left.clone(),
-                t.right.clone(),
-                t.value.clone(),
-                t.missing_left.clone(),
-                inputs,
-            )
-            .expect("imported trees are valid native trees")
+            t.clone()
+                .into_tree(inputs)
+                .expect("imported trees are valid native trees")
         })
         .collect();
     TreeEnsemble::try_new(trees, imported.base_score, imported.link, inputs).unwrap()

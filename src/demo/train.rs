@@ -16,7 +16,7 @@ use rand::seq::index::sample;
 use rand_chacha::ChaCha8Rng;
 
 use crate::engine::error::{EngineError, Result};
-use crate::model::{LinearModel, Link, Tree, TreeEnsemble, logistic};
+use crate::model::{LinearModel, Link, TreeBody, TreeEnsemble, logistic};
 
 /// Newton steps allowed before the logistic fit gives up.
 const MAX_NEWTON_STEPS: usize = 100;
@@ -212,19 +212,10 @@ fn boost(
             learning_rate,
             margins: &mut margins,
             histogram: Vec::with_capacity(MAX_BINS + 1),
-            nodes: Nodes::default(),
+            nodes: TreeBody::default(),
         };
         grower.grow((0..n).collect(), 0);
-        let nodes = grower.nodes;
-        ensemble.push(Tree::try_new(
-            nodes.feature,
-            nodes.threshold,
-            nodes.left,
-            nodes.right,
-            nodes.value,
-            nodes.missing_left,
-            p,
-        )?);
+        ensemble.push(grower.nodes.into_tree(p)?);
     }
     Ok((
         TreeEnsemble::try_new(ensemble, base_score, Link::Logistic, p)?,
@@ -296,16 +287,6 @@ fn candidate_thresholds(sorted: &[f64]) -> Vec<f64> {
     edges
 }
 
-#[derive(Default)]
-struct Nodes {
-    feature: Vec<i32>,
-    threshold: Vec<f64>,
-    left: Vec<i32>,
-    right: Vec<i32>,
-    value: Vec<f64>,
-    missing_left: Vec<bool>,
-}
-
 struct Split {
     feature: usize,
     /// Rows with a code ≤ this go left.
@@ -324,7 +305,7 @@ struct Grower<'a> {
     margins: &'a mut [f64],
     /// Scratch (gradient, hessian) sums per bin, reused across nodes.
     histogram: Vec<(f64, f64)>,
-    nodes: Nodes,
+    nodes: TreeBody,
 }
 
 impl Grower<'_> {
@@ -512,7 +493,7 @@ fn softplus(t: f64) -> f64 {
 mod tests {
     use super::*;
     use crate::demo::applicants::generate;
-    use crate::model::Model;
+    use crate::model::{Model, Tree};
     use ndarray::Array2;
     use rand::Rng;
     use rand_distr::StandardNormal;

@@ -12,7 +12,7 @@ use super::spec::{Background, FeatureSpec, ModelBody, ModelSpec};
 use super::store::spec_checksum;
 use super::{Entry, ModelInfo, RegistryError, Result};
 use crate::engine::{EngineError, Players, PreparedModel};
-use crate::model::{LinearModel, Link, Model, Tree, TreeEnsemble};
+use crate::model::{LinearModel, Link, Model, TreeEnsemble};
 
 /// Longest model id, in characters.
 pub const MAX_MODEL_ID_CHARS: usize = 128;
@@ -364,16 +364,7 @@ fn build_model(body: &ModelBody, link: Link, inputs: usize) -> Result<Arc<dyn Mo
                         .into());
                     }
                 }
-                let tree = Tree::try_new(
-                    tree.feature.clone(),
-                    tree.threshold.clone(),
-                    tree.left.clone(),
-                    tree.right.clone(),
-                    tree.value.clone(),
-                    tree.missing_left.clone(),
-                    inputs,
-                )
-                .map_err(|error| {
+                let tree = tree.clone().into_tree(inputs).map_err(|error| {
                     EngineError::new(error.field, format!("tree {index}: {}", error.message))
                 })?;
                 built.push(tree);
