@@ -42,6 +42,9 @@ fn info_json(m: &proto::ModelInfo) -> Value {
         info["import_objective"] = json!(m.import_objective);
         info["import_class_index"] = json!(m.import_class_index);
     }
+    if !m.import_output.is_empty() {
+        info["import_output"] = json!(m.import_output);
+    }
     info
 }
 
@@ -68,7 +71,8 @@ pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
 /// `model` may instead be `{ "kind": "trees", "base_score": 0.0, "trees":
 /// [{ "feature", "threshold", "left", "right", "value", "missing_left" }] }`
 /// with the node arrays of the API's `Tree` message, or `{ "kind": "onnx",
-/// "path": "model.onnx", "output": "probabilities", "column": 1 }` (path
+/// "path": "model.onnx", "output": "probabilities", "column": 1,
+/// "class_index": 1 }` (all but the path optional; path
 /// relative to the model file; output and column as in the API), or
 /// `{ "kind": "xgboost", "path": "model.json", "class_index": 2 }` (the JSON
 /// XGBoost's `save_model` writes) or `{ "kind": "lightgbm", "path":
@@ -128,6 +132,8 @@ pub enum ModelEntry {
         output: String,
         #[serde(default)]
         column: u32,
+        #[serde(default)]
+        class_index: Option<u32>,
     },
     /// An XGBoost JSON model file, its path relative to the model file.
     Xgboost {
@@ -228,8 +234,10 @@ pub fn registration(
             path,
             output,
             column,
+            class_index: class,
         } => {
             (onnx_output, onnx_output_column) = (output, column);
+            class_index = class;
             proto::register_model_request::Model::Onnx(beside(path)?)
         }
         ModelEntry::Linear { weights, intercept } => {

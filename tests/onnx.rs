@@ -159,7 +159,7 @@ async fn an_onnx_linear_graph_is_explained_like_the_same_linear_model() {
             .await
             .unwrap()
             .into_inner();
-        assert_eq!(info.model_kind, "onnx");
+        assert_eq!(info.model_kind, "onnx-graph");
         checksums.push(info.checksum);
     }
     registry
@@ -288,9 +288,9 @@ async fn unusable_graphs_are_refused_naming_the_field() {
     wrong_output.onnx_output = "probabilities".into();
     let cases = [
         ("onnx", request("bad", Model::Onnx(b"not a graph".to_vec()))),
-        // Three weights for four registered features.
+        // A graph declared [batch, 3] for four registered features.
         (
-            "onnx",
+            "features",
             request("bad", Model::Onnx(linear_graph(&WEIGHTS[..3], 0.0, DOUBLE))),
         ),
         ("onnx_output_column", wrong_column),

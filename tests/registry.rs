@@ -621,6 +621,7 @@ fn import_provenance_is_stored_with_the_record_and_only_on_trees() {
         format: ImportFormat::LightgbmText,
         objective: "binary sigmoid:1".to_string(),
         class_index: 1,
+        output: String::new(),
     };
     let mut spec = tree_spec("imported", 71);
     spec.imported = Some(imported.clone());
@@ -647,7 +648,8 @@ fn import_provenance_is_stored_with_the_record_and_only_on_trees() {
     assert_eq!(as_registered(reopened.info()), as_registered(&info));
     assert_eq!(reopened.spec(), spec);
 
-    // Both importers give trees: provenance on a linear model is refused.
+    // Library files give trees, and only ONNX graphs give linear models:
+    // LightGBM provenance on a linear model is refused, ONNX's is kept.
     let mut linear = linear_spec("not-imported", 72);
     linear.imported = Some(imported);
     match registry.register(linear) {
@@ -655,6 +657,15 @@ fn import_provenance_is_stored_with_the_record_and_only_on_trees() {
         other => panic!("expected a refusal naming `imported`, got {other:?}"),
     }
     assert!(registry.get("not-imported", 0).is_err());
+    let mut from_onnx = linear_spec("from-onnx", 73);
+    from_onnx.imported = Some(ImportSpec {
+        format: ImportFormat::Onnx,
+        objective: "LinearRegressor post_transform=NONE after Scaler".to_string(),
+        class_index: 0,
+        output: "variable".to_string(),
+    });
+    let info = registry.register(from_onnx.clone()).unwrap();
+    assert_eq!(info.imported, from_onnx.imported);
 }
 
 #[test]

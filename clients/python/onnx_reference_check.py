@@ -4,7 +4,8 @@ Two ONNX graphs are registered with a running apportion server:
 
 * a small neural network written with onnx.helper (MatMul, Add, Relu), and
 * a scikit-learn RandomForestClassifier exported by skl2onnx
-  (TreeEnsembleClassifier, probabilities of the positive class).
+  (TreeEnsembleClassifier, probabilities of the positive class), which the
+  server imports as native trees.
 
 For each, the server's predictions (value_full under fixed removal at the
 instance itself) must equal onnxruntime's, and the server's exact Shapley
@@ -122,11 +123,13 @@ def main():
     background = rng.normal(size=(24, features))
     instances = rng.normal(size=(6, features))
     forest, forest_bytes = forest_graph(rng, features)
+    # The network runs in the graph runtime; the forest, one ai.onnx.ml
+    # operator, is imported as native trees.
     cases = [
-        ("py-onnx-network", network_graph(rng, features, 8), "", 0),
-        ("py-onnx-forest", forest_bytes, "probabilities", 1),
+        ("py-onnx-network", network_graph(rng, features, 8), "", 0, "onnx-graph"),
+        ("py-onnx-forest", forest_bytes, "probabilities", 1, "trees"),
     ]
-    for model_id, graph, output, column in cases:
+    for model_id, graph, output, column, kind in cases:
         info = registry.RegisterModel(pb.RegisterModelRequest(
             model_id=model_id,
             features=[pb.Feature(name=f"x{j}") for j in range(features)],
@@ -135,7 +138,7 @@ def main():
             onnx_output_column=column,
             background=pb.Matrix(rows=len(background), cols=features, values=background.ravel().tolist()),
         ))
-        check(f"{model_id}: registered as an ONNX model", info.model_kind == "onnx", str(info))
+        check(f"{model_id}: registered as {kind}", info.model_kind == kind, str(info))
         session = onnxruntime.InferenceSession(graph, providers=["CPUExecutionProvider"])
         output_name = output or session.get_outputs()[0].name
 

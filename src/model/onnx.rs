@@ -179,6 +179,6 @@ impl Model for OnnxModel {
     }
 
     fn kind(&self) -> &'static str {
-        "onnx"
+        "onnx-graph"
     }
 }

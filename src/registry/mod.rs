@@ -70,7 +70,7 @@ pub struct ModelInfo {
     pub version: u64,
     pub features: Vec<FeatureSpec>,
     pub background_rows: usize,
-    /// [`Model::kind`]: `linear` or `trees`.
+    /// [`Model::kind`]: `linear`, `trees` or `onnx-graph`.
     pub model_kind: &'static str,
     pub link: Link,
     /// Measured at registration: time of one model row in a batched
@@ -89,6 +89,8 @@ pub struct ModelInfo {
     /// The file, objective and class an imported model was read from; `None`
     /// for a native registration.
     pub imported: Option<ImportSpec>,
+    /// The output an ONNX graph evaluated as it is reads (empty: its first).
+    pub graph_output: Option<String>,
 }
 
 /// One registered version, ready to explain with. Shared as `Arc<Entry>`;

@@ -103,6 +103,8 @@ pub enum ImportFormat {
     XgboostJson,
     /// The text LightGBM's `save_model` writes.
     LightgbmText,
+    /// An ONNX graph of one ai.onnx.ml tree or linear operator.
+    Onnx,
 }
 
 impl ImportFormat {
@@ -111,6 +113,7 @@ impl ImportFormat {
         match self {
             ImportFormat::XgboostJson => "xgboost_json",
             ImportFormat::LightgbmText => "lightgbm_text",
+            ImportFormat::Onnx => "onnx",
         }
     }
 }
@@ -125,6 +128,10 @@ pub struct ImportSpec {
     pub objective: String,
     /// The class whose margin was imported (0 for one output).
     pub class_index: u32,
+    /// For a graph, the score output whose margin is explained. Empty (and
+    /// then not written, so earlier records keep their bytes) otherwise.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub output: String,
 }
 
 /// A registration request.

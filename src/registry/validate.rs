@@ -8,7 +8,7 @@ use std::time::{Duration, Instant};
 
 use ndarray::{Array2, ArrayView2};
 
-use super::spec::{Background, FeatureSpec, ModelBody, ModelSpec};
+use super::spec::{Background, FeatureSpec, ImportFormat, ModelBody, ModelSpec};
 use super::store::spec_checksum;
 use super::{Entry, ModelInfo, RegistryError, Result};
 use crate::engine::{EngineError, Players, PreparedModel};
@@ -130,11 +130,17 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
     check_text("description", &spec.description, MAX_DESCRIPTION_BYTES)?;
     if let Some(imported) = &spec.imported {
         check_text("imported.objective", &imported.objective, MAX_TEXT_BYTES)?;
-        // Both importers give trees; anything else is a record edited by hand.
-        if !matches!(spec.model, ModelBody::Trees { .. }) {
+        // Importers give trees, and linear models from ONNX graphs only;
+        // anything else is a record edited by hand.
+        let native = match spec.model {
+            ModelBody::Trees { .. } => true,
+            ModelBody::Linear { .. } => imported.format == ImportFormat::Onnx,
+            _ => false,
+        };
+        if !native {
             return Err(EngineError::new(
                 "imported",
-                "is set, but the model is not trees; only tree ensembles are imported from library files",
+                "is set, but the model is neither trees nor a linear model read from an ONNX graph",
             )
             .into());
         }
@@ -170,6 +176,10 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
         Some(checksum) => checksum,
         None => spec_checksum(&spec)?,
     };
+    let graph_output = match &spec.model {
+        ModelBody::Onnx { output, .. } => Some(output.clone()),
+        _ => None,
+    };
     let ModelSpec {
         model_id,
         features,
@@ -199,6 +209,7 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
             checksum,
             description,
             imported,
+            graph_output,
         },
         body,
         model,

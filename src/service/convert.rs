@@ -16,7 +16,7 @@ use crate::model::import::{self, ImportedTrees};
 use crate::reasons;
 use crate::registry::{
     Background, Entry, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, MAX_BACKGROUND_BYTES,
-    MAX_BACKGROUND_ROWS, ModelBody, ModelInfo, ModelSpec, TreeBody,
+    MAX_BACKGROUND_ROWS, MAX_ONNX_BYTES, ModelBody, ModelInfo, ModelSpec, RegistryError, TreeBody,
 };
 
 /// Evaluation cap when the request gives none.
@@ -141,12 +141,12 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
             .collect();
         let imported = matches!(
             request.model,
-            Some(Model::XgboostJson(_)) | Some(Model::LightgbmText(_))
+            Some(Model::XgboostJson(_)) | Some(Model::LightgbmText(_)) | Some(Model::Onnx(_))
         );
         if request.class_index.is_some() && !imported {
             return Err(ServiceError::invalid(
                 "class_index",
-                "applies to `xgboost_json` and `lightgbm_text` models only; leave it unset",
+                "applies to `onnx`, `xgboost_json` and `lightgbm_text` models only; leave it unset",
             ));
         }
         let (model, link, imported) = match request.model {
@@ -177,23 +177,17 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
                 LinkSpec::from(requested_link),
                 None,
             ),
-            #[cfg(feature = "onnx")]
-            Some(Model::Onnx(graph)) => (
-                ModelBody::Onnx {
-                    graph,
-                    output: request.onnx_output,
-                    column: request.onnx_output_column as usize,
+            Some(Model::Onnx(graph)) => onnx_model(
+                graph,
+                import::OnnxChoice {
+                    output: &request.onnx_output,
+                    column: request.onnx_output_column,
+                    class_index: request.class_index,
+                    features: features.len(),
                 },
-                LinkSpec::from(requested_link),
-                None,
-            ),
-            #[cfg(not(feature = "onnx"))]
-            Some(Model::Onnx(_)) => {
-                return Err(ServiceError::Unimplemented(
-                    "onnx: this build has no ONNX runtime (built without the `onnx` feature)"
-                        .to_string(),
-                ));
-            }
+                requested_link,
+                &mut features,
+            )?,
             Some(Model::XgboostJson(bytes)) => native_trees(
                 ImportFormat::XgboostJson,
                 import::xgboost_json(&bytes, request.class_index)?,
@@ -247,19 +241,133 @@ fn native_trees(
     requested_link: proto::Link,
     features: &mut Vec<FeatureSpec>,
 ) -> Result<(ModelBody, LinkSpec, Option<ImportSpec>)> {
-    if requested_link == proto::Link::Logistic && imported.link != Link::Logistic {
+    check_link(requested_link, imported.link, &imported.objective)?;
+    // A graph's width was checked against the features already; its names
+    // are given only when the request has none.
+    if features.is_empty() || !imported.feature_names.is_empty() {
+        let inputs = imported.feature_names.len();
+        take_names(features, imported.feature_names, inputs)?;
+    }
+    Ok((
+        ModelBody::Trees {
+            trees: imported.trees,
+            base_score: imported.base_score,
+        },
+        LinkSpec::from(imported.link),
+        Some(ImportSpec {
+            format,
+            objective: imported.objective,
+            class_index: imported.class_index,
+            output: String::new(),
+        }),
+    ))
+}
+
+/// An ONNX graph: native trees or a linear model when it is one ai.onnx.ml
+/// operator behind foldable steps, else the graph itself for the runtime,
+/// reading the output chosen by type. A logistic link on an output that is
+/// already a probability is refused, not applied twice.
+fn onnx_model(
+    graph: Vec<u8>,
+    choice: import::OnnxChoice<'_>,
+    requested_link: proto::Link,
+    features: &mut Vec<FeatureSpec>,
+) -> Result<(ModelBody, LinkSpec, Option<ImportSpec>)> {
+    if graph.len() > MAX_ONNX_BYTES {
+        return Err(RegistryError::TooLarge {
+            field: "onnx".to_string(),
+            actual: graph.len() as u64,
+            limit: MAX_ONNX_BYTES as u64,
+            unit: "bytes",
+            fix: "register a smaller graph",
+        }
+        .into());
+    }
+    match import::onnx_graph(&graph, choice)? {
+        import::OnnxImport::Trees { trees, output } => {
+            let (body, link, spec) =
+                native_trees(ImportFormat::Onnx, trees, requested_link, features)?;
+            Ok((body, link, spec.map(|spec| ImportSpec { output, ..spec })))
+        }
+        import::OnnxImport::Linear { linear, output } => {
+            check_link(requested_link, linear.link, &linear.objective)?;
+            take_names(features, linear.feature_names, linear.weights.len())?;
+            Ok((
+                ModelBody::Linear {
+                    weights: linear.weights,
+                    intercept: linear.intercept,
+                },
+                LinkSpec::from(linear.link),
+                Some(ImportSpec {
+                    format: ImportFormat::Onnx,
+                    objective: linear.objective,
+                    class_index: linear.class_index,
+                    output,
+                }),
+            ))
+        }
+        import::OnnxImport::Graph {
+            output,
+            probability,
+            feature_names,
+            why,
+        } => {
+            if cfg!(not(feature = "onnx")) {
+                return Err(ServiceError::Unimplemented(format!(
+                    "onnx: the graph is not one tree or linear operator ({why}), and this build has no ONNX runtime (built without the `onnx` feature)"
+                )));
+            }
+            if probability && requested_link == proto::Link::Logistic {
+                return Err(ServiceError::invalid(
+                    "link",
+                    format!(
+                        "is LINK_LOGISTIC, but the output `{output}` is already a probability; leave `link` unset and use TARGET_OUTPUT, or name the graph's raw score output"
+                    ),
+                ));
+            }
+            if choice.class_index.is_some() {
+                return Err(ServiceError::invalid(
+                    "class_index",
+                    "applies to graphs imported as native trees or linear models; for a graph run as it is, pick the column with onnx_output_column",
+                ));
+            }
+            tracing::info!(%why, %output, "ONNX graph runs in the graph runtime");
+            if features.is_empty() {
+                let inputs = feature_names.len();
+                take_names(features, feature_names, inputs)?;
+            }
+            Ok((
+                ModelBody::Onnx {
+                    graph,
+                    output,
+                    column: choice.column as usize,
+                },
+                LinkSpec::from(requested_link),
+                None,
+            ))
+        }
+    }
+}
+
+/// LINK_IDENTITY is also the unset value, so only an explicit LINK_LOGISTIC
+/// can contradict the link a file implies.
+fn check_link(requested: proto::Link, implied: Link, objective: &str) -> Result<()> {
+    if requested == proto::Link::Logistic && implied != Link::Logistic {
         return Err(ServiceError::invalid(
             "link",
             format!(
-                "is LINK_LOGISTIC, but the objective `{}` gives a margin on the identity scale; leave `link` unset",
-                imported.objective
+                "is LINK_LOGISTIC, but `{objective}` gives a margin on the identity scale; leave `link` unset"
             ),
         ));
     }
-    let inputs = imported.feature_names.len();
+    Ok(())
+}
+
+/// Feature names from the file when the request gives none; otherwise the
+/// request must give one per input.
+fn take_names(features: &mut Vec<FeatureSpec>, names: Vec<String>, inputs: usize) -> Result<()> {
     if features.is_empty() {
-        *features = imported
-            .feature_names
+        *features = names
             .into_iter()
             .map(|name| FeatureSpec {
                 name,
@@ -277,18 +385,7 @@ fn native_trees(
             ),
         ));
     }
-    Ok((
-        ModelBody::Trees {
-            trees: imported.trees,
-            base_score: imported.base_score,
-        },
-        LinkSpec::from(imported.link),
-        Some(ImportSpec {
-            format,
-            objective: imported.objective,
-            class_index: imported.class_index,
-        }),
-    ))
+    Ok(())
 }
 
 /// Player names of a feature list, in attribution order. Registered
@@ -328,6 +425,10 @@ impl From<&ModelInfo> for proto::ModelInfo {
                 .map(|imported| imported.objective.clone())
                 .unwrap_or_default(),
             import_class_index: info.imported.as_ref().map(|imported| imported.class_index),
+            import_output: match &info.imported {
+                Some(imported) => imported.output.clone(),
+                None => info.graph_output.clone().unwrap_or_default(),
+            },
         }
     }
 }

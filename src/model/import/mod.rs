@@ -1,12 +1,16 @@
 //! Model files as modelling libraries write them (XGBoost's JSON, LightGBM's
-//! text), read into the native tree form the registry stores. Each importer
+//! text, ONNX graphs of one ai.onnx.ml tree or linear operator), read into
+//! the native tree and linear forms the registry stores. Each importer
 //! converts every split so that the native `x < threshold` decides as the
 //! library does for every double input, and refuses what it cannot map.
 
 mod lightgbm;
+mod onnx_ml;
+mod onnx_schema;
 mod xgboost;
 
 pub use lightgbm::lightgbm_text;
+pub use onnx_ml::{ImportedLinear, OnnxChoice, OnnxImport, onnx_graph};
 pub use xgboost::xgboost_json;
 
 use crate::engine::error::{EngineError, Result};
