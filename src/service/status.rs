@@ -81,6 +81,8 @@ fn code_of(kind: ErrorKind) -> Code {
         ErrorKind::NotFound => Code::NotFound,
         ErrorKind::FailedPrecondition => Code::FailedPrecondition,
         ErrorKind::ResourceExhausted => Code::ResourceExhausted,
+        ErrorKind::DeadlineExceeded => Code::DeadlineExceeded,
+        ErrorKind::Cancelled => Code::Cancelled,
         ErrorKind::Unimplemented => Code::Unimplemented,
         ErrorKind::Unavailable => Code::Unavailable,
         ErrorKind::Internal => Code::Internal,
