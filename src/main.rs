@@ -140,6 +140,9 @@ struct ServeArgs {
     /// Largest draws an Explain call may ask for [default: 4096].
     #[arg(long, env = "APPORTION_MAX_DRAWS")]
     max_draws: Option<u32>,
+    /// Most model rows one coalition value may cost (draws or background rows, times data set rows) [default: 1048576].
+    #[arg(long, env = "APPORTION_MAX_COALITION_ROWS")]
+    max_coalition_rows: Option<usize>,
 }
 
 impl ServeArgs {
@@ -162,6 +165,7 @@ impl ServeArgs {
             max_budget_ms: self.max_budget_ms,
             max_evaluations: self.max_evaluations,
             max_draws: self.max_draws,
+            max_coalition_rows: self.max_coalition_rows,
         };
         Ok(given.over(file).resolve()?)
     }

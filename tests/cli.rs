@@ -24,6 +24,7 @@ fn apportion() -> Command {
         "APPORTION_MAX_BUDGET_MS",
         "APPORTION_MAX_EVALUATIONS",
         "APPORTION_MAX_DRAWS",
+        "APPORTION_MAX_COALITION_ROWS",
         "RUST_LOG",
     ] {
         command.env_remove(variable);
@@ -121,6 +122,7 @@ fn the_shipped_settings_file_is_valid() {
     assert_eq!(printed["max_budget_ms"].as_integer(), Some(60000));
     assert_eq!(printed["max_evaluations"].as_integer(), Some(4194304));
     assert_eq!(printed["max_draws"].as_integer(), Some(4096));
+    assert_eq!(printed["max_coalition_rows"].as_integer(), Some(1048576));
 }
 
 /// A server started from a config file, killed when dropped.

@@ -3,7 +3,9 @@
 //! DEADLINE_EXCEEDED; a call its client abandons stops computing (seen
 //! through the cancellation counter on the metrics endpoint) and frees its
 //! compute thread; requests at the type maxima of the fields that size work
-//! get INVALID_ARGUMENT naming the field and the maximum; and the server
+//! (and a data set whose rows times the draws pass the rows one coalition
+//! may cost) get INVALID_ARGUMENT naming the field and the maximum; and the
+//! server
 //! keeps serving after each.
 
 mod support;
@@ -214,7 +216,9 @@ async fn hostile_sizes_get_precise_statuses_and_the_server_keeps_serving() {
         .unwrap();
     let defaults = Config::default();
     let mut attributions = server.attributions_client();
-    let cases: [(&str, String, proto::ExplainRequest); 4] = [
+    // 300 rows × 4096 draws: 1,228,800 model rows for one coalition value.
+    let dataset_rows = 300;
+    let cases: [(&str, String, proto::ExplainRequest); 5] = [
         (
             "budget_ms",
             defaults.max_budget.as_millis().to_string(),
@@ -237,6 +241,22 @@ async fn hostile_sizes_get_precise_statuses_and_the_server_keeps_serving() {
             proto::ExplainRequest {
                 removal: proto::Removal::Independent as i32,
                 draws: u32::MAX,
+                ..small_request()
+            },
+        ),
+        (
+            "dataset",
+            defaults.max_coalition_rows.to_string(),
+            proto::ExplainRequest {
+                removal: proto::Removal::Independent as i32,
+                draws: defaults.max_draws,
+                target: proto::Target::DatasetLoss as i32,
+                dataset: Some(proto::Matrix {
+                    rows: dataset_rows as u32,
+                    cols: PLAYERS as u32,
+                    values: vec![0.25; dataset_rows * PLAYERS],
+                }),
+                dataset_labels: vec![1.0; dataset_rows],
                 ..small_request()
             },
         ),

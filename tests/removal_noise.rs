@@ -309,7 +309,7 @@ fn conditional_value(
         })
     };
     let mut m: Vec<f64> = INSTANCE.to_vec();
-    let mut c = vec![0.0; FEATURES];
+    let mut c = [0.0; FEATURES];
     if present.is_empty() {
         for j in 0..FEATURES {
             m[j] = mean[j];
@@ -371,19 +371,17 @@ fn exact_enumeration_under_gaussian_removal_covers_the_conditional_closed_form()
     println!("std error ratio, 32 vs 8 draws: {ratio:.3}");
     assert!((0.4..0.6).contains(&ratio), "{ratio}");
 
-    let linear = linear();
+    // The quadratic model with no squares is the linear model itself.
+    let plain = Quadratic {
+        linear: linear(),
+        squares: vec![0.0; FEATURES],
+    };
     let linear_table: Vec<f64> = (0..1usize << FEATURES)
-        .map(|bits| {
-            let zero = Quadratic {
-                linear: self::linear(),
-                squares: vec![0.0; FEATURES],
-            };
-            conditional_value(&zero, &mean, &covariance, bits)
-        })
+        .map(|bits| conditional_value(&plain, &mean, &covariance, bits))
         .collect();
     let linear_truth = shapley_of(&linear_table, FEATURES);
     let removal = ConditionalGaussian::try_new(&fit, 8, 1).unwrap();
-    let estimate = explain(&linear, &removal, &players, Summary::Shapley);
+    let estimate = explain(&plain.linear, &removal, &players, Summary::Shapley);
     for ((value, se), t) in estimate
         .values
         .iter()

@@ -28,6 +28,10 @@ pub const DEFAULT_DRAWS: usize = 32;
 /// Most draws per coalition: each draw is a model row per coalition, and
 /// more than this buys no accuracy a budget could pay for.
 pub const MAX_DRAWS: usize = 4096;
+/// Most model rows one coalition value may cost by default (removal rows ×
+/// DATASET_LOSS rows): they are filled and predicted as one block, so this
+/// bounds a request's memory whatever its draws and data set.
+pub const DEFAULT_MAX_COALITION_ROWS: usize = 1 << 20;
 /// Kernel width for neighbour removal when the caller gives none.
 pub const DEFAULT_WIDTH: f64 = 1.0;
 /// Jobs predicted to take at most this long are cheaper to compute where
@@ -80,6 +84,8 @@ pub struct Request {
     pub tolerance: f64,
     pub seed: u64,
     pub enumeration_cap: usize,
+    /// Most model rows one coalition value may cost.
+    pub max_coalition_rows: usize,
 }
 
 impl Request {
@@ -97,6 +103,7 @@ impl Request {
             tolerance: 0.0,
             seed: 0,
             enumeration_cap: plan::DEFAULT_ENUMERATION_CAP,
+            max_coalition_rows: DEFAULT_MAX_COALITION_ROWS,
         }
     }
 }
@@ -207,9 +214,29 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         _ => 1,
     };
     let background_rows = model.background().nrows();
-    let rows_per_coalition = removal
-        .rows_per_coalition(background_rows)
-        .saturating_mul(instances);
+    let removal_rows = removal.rows_per_coalition(background_rows);
+    let rows_per_coalition = removal_rows.saturating_mul(instances);
+    if rows_per_coalition > request.max_coalition_rows {
+        let field = if instances > 1 {
+            "dataset"
+        } else if matches!(
+            removal,
+            ValidRemoval::Independent { .. } | ValidRemoval::ConditionalGaussian { .. }
+        ) {
+            "draws"
+        } else {
+            "removal"
+        };
+        return Err(EngineError::new(
+            field,
+            format!(
+                "one coalition value would cost {removal_rows} removal rows × {instances} \
+                 instances = {rows_per_coalition} model rows, over the maximum of {}; use fewer \
+                 draws or data set rows (or a removal with fewer rows)",
+                request.max_coalition_rows
+            ),
+        ));
+    }
     let shape = match model.structure() {
         Structure::Linear(_) => ModelShape::Linear,
         Structure::Trees(_) => ModelShape::Trees,

@@ -39,6 +39,7 @@ impl AttributionsService {
         shared.limits.check(&message)?;
         let mut request = convert::explain_request(&message, budget)?;
         request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
+        request.max_coalition_rows = shared.limits.coalition_rows;
         let entry = shared.registry.get(&message.model_id, message.version)?;
         let job = engine::prepare(entry.prepared(), request)?;
         // Work that cannot start before the deadline (or, without one, within

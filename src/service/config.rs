@@ -16,6 +16,7 @@
 //! max_budget_ms = 60000               # the most an Explain call may ask for
 //! max_evaluations = 4194304
 //! max_draws = 4096
+//! max_coalition_rows = 1048576
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -49,6 +50,7 @@ pub struct ConfigLayer {
     pub max_budget_ms: Option<u64>,
     pub max_evaluations: Option<u64>,
     pub max_draws: Option<u32>,
+    pub max_coalition_rows: Option<usize>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -100,6 +102,7 @@ impl ConfigLayer {
             max_budget_ms: self.max_budget_ms.or(lower.max_budget_ms),
             max_evaluations: self.max_evaluations.or(lower.max_evaluations),
             max_draws: self.max_draws.or(lower.max_draws),
+            max_coalition_rows: self.max_coalition_rows.or(lower.max_coalition_rows),
         }
     }
 
@@ -149,6 +152,9 @@ impl ConfigLayer {
                 format!("must be between 1 and {MAX_DRAWS}, the engine's own limit; got {draws}"),
             ));
         }
+        if self.max_coalition_rows == Some(0) {
+            return Err(invalid("max_coalition_rows", "must be at least 1".into()));
+        }
         if let Some(filter) = &self.log_filter
             && let Err(error) = tracing_subscriber::EnvFilter::try_new(filter)
         {
@@ -172,6 +178,9 @@ impl ConfigLayer {
                 .map_or(defaults.max_budget, Duration::from_millis),
             max_evaluations: self.max_evaluations.unwrap_or(defaults.max_evaluations),
             max_draws: self.max_draws.unwrap_or(defaults.max_draws),
+            max_coalition_rows: self
+                .max_coalition_rows
+                .unwrap_or(defaults.max_coalition_rows),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -206,6 +215,7 @@ impl Config {
             max_budget_ms: Some(self.max_budget.as_millis() as u64),
             max_evaluations: Some(self.max_evaluations),
             max_draws: Some(self.max_draws),
+            max_coalition_rows: Some(self.max_coalition_rows),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -331,6 +341,13 @@ mod tests {
                     ..ConfigLayer::default()
                 },
                 "default_budget_ms",
+            ),
+            (
+                ConfigLayer {
+                    max_coalition_rows: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "max_coalition_rows",
             ),
             (
                 ConfigLayer {

@@ -57,6 +57,9 @@ pub struct Config {
     /// Largest `draws` a call may ask for: each draw is a model row per
     /// coalition, held in memory with the coalition's batch.
     pub max_draws: u32,
+    /// Most model rows one coalition value may cost (draws or background
+    /// rows, times DATASET_LOSS rows): they are filled as one block.
+    pub max_coalition_rows: usize,
 }
 
 impl Default for Config {
@@ -74,6 +77,7 @@ impl Default for Config {
             max_budget: Duration::from_secs(60),
             max_evaluations: 1 << 22,
             max_draws: crate::engine::job::MAX_DRAWS as u32,
+            max_coalition_rows: crate::engine::job::DEFAULT_MAX_COALITION_ROWS,
         }
     }
 }
@@ -96,6 +100,7 @@ pub(super) struct Limits {
     pub(super) budget: Duration,
     pub(super) evaluations: u64,
     pub(super) draws: u32,
+    pub(super) coalition_rows: usize,
 }
 
 /// The state `run` serves: the registry and the settings the handlers need.
@@ -128,6 +133,7 @@ impl State {
                     budget: config.max_budget,
                     evaluations: config.max_evaluations,
                     draws: config.max_draws,
+                    coalition_rows: config.max_coalition_rows,
                 },
             }),
             max_message_bytes: config.max_message_bytes,
