@@ -166,9 +166,8 @@ fn every_exact_summary_covers_the_additive_closed_form() {
 /// permutation and leverage regression have no sampling error at all and
 /// everything their std errors must cover is removal noise, much of it in
 /// values the cache hands to many samples. MSR's Banzhaf values of the
-/// additive game are the same closed form. (Paired regression, which draws
-/// pairs with replacement, does not count the covariance of a pair drawn
-/// twice, and is not held to this.)
+/// additive game are the same closed form. Paired regression draws pairs
+/// with replacement, so at p = 8 many are drawn more than once.
 #[test]
 fn samplers_cover_the_closed_form_when_cached_noisy_values_are_reused() {
     let model = linear();
@@ -178,9 +177,17 @@ fn samplers_cover_the_closed_form_when_cached_noisy_values_are_reused() {
         .map(|j| model.weights()[j] * (INSTANCE[j] - background.column(j).mean().unwrap()))
         .collect();
     type Sampler = fn(&CachedGame, &Stopping, u64) -> apportion::engine::Result<Estimate>;
-    let samplers: [(&str, Sampler, u64); 4] = [
+    fn paired(
+        game: &CachedGame,
+        stopping: &Stopping,
+        seed: u64,
+    ) -> apportion::engine::Result<Estimate> {
+        regression::paired(game, Kernel::Shapley, stopping, seed)
+    }
+    let samplers: [(&str, Sampler, u64); 5] = [
         ("permutation", permutation::shapley, 120),
         ("permutation, every coalition", permutation::shapley, 4096),
+        ("paired", paired, 120),
         ("leverage", regression::leverage, 120),
         ("msr", msr::banzhaf, 120),
     ];

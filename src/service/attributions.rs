@@ -1,6 +1,7 @@
-//! The Attributions service: convert the request, prepare a job against
-//! the registered model, run it where the call arrives or on the compute
-//! pool, and convert the answer back.
+//! The Attributions service: check the request against the server's
+//! maxima, convert it, prepare a job against the registered model, run it
+//! where the call arrives or on the compute pool (cancelled if the call goes
+//! away first), and convert the answer back.
 
 use std::sync::Arc;
 use std::time::Instant;

@@ -2,6 +2,8 @@
 //! estimators: normal equations accumulated from complementary pairs, the
 //! fit under the efficiency constraint, and its std errors.
 
+use std::collections::HashMap;
+
 use nalgebra::{DMatrix, DVector};
 
 use crate::engine::coalition::Coalition;
@@ -105,7 +107,10 @@ pub(super) fn solve_constrained(equations: &NormalEquations, total: f64) -> Opti
 /// sampling, e.g. Cochran, "Sampling Techniques", Wiley, 1977). The removal
 /// noise of a pair enters `ψ_j` as `w_j (ε_S - ε_S̄) P x`, of variance
 /// `w_j² noise_j (P x)²`; `noise_shares[s]` of it is added per pair of
-/// stratum `s`, for the part the factor takes away.
+/// stratum `s`, for the part the factor takes away. A pair drawn `m` times
+/// reuses its cached values, so its noise enters `m` times at once: the
+/// spread misses `factor · m (m - 1)` times its variance (the covariance of
+/// reused values, as for the sample means in `sampling.rs`), added here.
 pub(super) fn std_errors(
     fit: &Fit,
     samples: &[PairSample],
@@ -120,6 +125,17 @@ pub(super) fn std_errors(
     let mut mean = vec![vec![0.0; players]; strata];
     let mut squares = vec![vec![0.0; players]; strata];
     let mut direction = vec![0.0; players];
+    // Draws of each pair, keyed by the smaller bit pattern of its two sides.
+    let key = |sample: &PairSample| {
+        let bits = sample.coalition.bits();
+        bits.min(sample.coalition.complement(players).bits())
+    };
+    let mut draws: HashMap<u128, u64> = HashMap::new();
+    if samples.iter().any(|sample| sample.noise != 0.0) {
+        for sample in samples {
+            *draws.entry(key(sample)).or_insert(0) += 1;
+        }
+    }
     for sample in samples {
         let complement = sample.coalition.complement(players);
         let predicted: f64 = sample.coalition.members().map(|i| fit.values[i]).sum();
@@ -140,7 +156,13 @@ pub(super) fn std_errors(
         }
         let scale = sign * weights[sample.stratum] * residual_gap;
         let s = sample.stratum;
-        let noise = noise_shares[s] * sample.noise * weights[s] * weights[s];
+        let repeats = draws.get(&key(sample)).map_or(0, |m| m - 1) as f64;
+        let reused = if repeats > 0.0 && factors[s].is_finite() {
+            factors[s] * repeats
+        } else {
+            0.0
+        };
+        let noise = (noise_shares[s] + reused) * sample.noise * weights[s] * weights[s];
         if noise != 0.0 {
             for (slot, d) in own_noise.iter_mut().zip(&direction) {
                 *slot += noise * d * d;

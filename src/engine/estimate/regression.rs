@@ -36,11 +36,10 @@ use crate::engine::summary::Kernel;
 /// Std errors linearise the constrained fit around the estimate: its error
 /// is a sum of independent per-pair terms, whose sample variance gives the
 /// std error (the sandwich form of a least-squares variance). Over a random
-/// removal the pairs' own noise is in that spread, and the noise of `v(∅)`
-/// and `v(all)`, which every pair shares, is added through the constraint.
-/// A pair drawn twice (pairs are drawn with replacement) reuses its cached
-/// noisy values; the covariance that adds is not in the std errors, which
-/// matters only when the pairs drawn are many next to `2^(p-1)`.
+/// removal the pairs' own noise is in that spread, the noise of `v(∅)` and
+/// `v(all)`, which every pair shares, is added through the constraint, and
+/// so is the covariance of a pair drawn more than once (pairs are drawn with
+/// replacement, and a repeat reuses the cached noisy values).
 ///
 /// Needs at least `2p + 4` evaluations, or `2^p` if fewer; fails if the
 /// sampled coalitions do not determine the fit.
