@@ -79,8 +79,9 @@ pub struct Request {
     pub estimator: Option<EstimatorKind>,
     pub budget: Duration,
     pub max_evaluations: u64,
-    /// Largest acceptable std error for sampled estimators; 0 lets the
-    /// engine use 1% of |v(all) − v(none)|.
+    /// Largest acceptable std error: where samplers stop, and whether an
+    /// exact answer over a random removal has converged; 0 lets the engine
+    /// choose ([`estimate::default_tolerance`]).
     pub tolerance: f64,
     pub seed: u64,
     pub enumeration_cap: usize,

@@ -26,7 +26,7 @@ const FIRST_PAIRS: u64 = 2;
 /// The std error of a player is the sample std deviation of its per-pair
 /// averages over the square root of the number of pairs; over a random
 /// removal, with the noise that cached values shared between pairs add
-/// (see [`SharedNoise`]).
+/// (see `SharedNoise` in `sampling.rs`).
 ///
 /// Needs at least `4p - 2` evaluations (two pairs), or `2^p` if fewer.
 pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Estimate> {

@@ -51,7 +51,7 @@ pub fn explain(
 }
 
 /// [`explain`], failing when cancelled or past the deadline, checked after
-/// every [`ROWS_PER_CHECK`] reference rows (an exact answer has no partial
+/// every few reference rows (an exact answer has no partial
 /// form).
 pub fn explain_within(
     ensemble: &TreeEnsemble,
