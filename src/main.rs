@@ -131,6 +131,18 @@ struct ServeArgs {
     /// Largest request or answer, in MiB [default: 64].
     #[arg(long, env = "APPORTION_MAX_MESSAGE_MIB")]
     max_message_mib: Option<usize>,
+    /// Largest budget_ms an Explain call may ask for [default: 60000].
+    #[arg(long, env = "APPORTION_MAX_BUDGET_MS")]
+    max_budget_ms: Option<u64>,
+    /// Largest max_evaluations an Explain call may ask for [default: 4194304].
+    #[arg(long, env = "APPORTION_MAX_EVALUATIONS")]
+    max_evaluations: Option<u64>,
+    /// Largest draws an Explain call may ask for [default: 4096].
+    #[arg(long, env = "APPORTION_MAX_DRAWS")]
+    max_draws: Option<u32>,
+    /// Most model rows one coalition value may cost (draws or background rows, times data set rows) [default: 1048576].
+    #[arg(long, env = "APPORTION_MAX_COALITION_ROWS")]
+    max_coalition_rows: Option<usize>,
 }
 
 impl ServeArgs {
@@ -150,6 +162,10 @@ impl ServeArgs {
             default_budget_ms: self.default_budget_ms,
             compute_threads: self.compute_threads,
             max_message_mib: self.max_message_mib,
+            max_budget_ms: self.max_budget_ms,
+            max_evaluations: self.max_evaluations,
+            max_draws: self.max_draws,
+            max_coalition_rows: self.max_coalition_rows,
         };
         Ok(given.over(file).resolve()?)
     }

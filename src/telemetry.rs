@@ -16,6 +16,9 @@ pub const COALITIONS_EVALUATED: &str = "apportion_coalitions_evaluated_total";
 pub const MODEL_ROWS_EVALUATED: &str = "apportion_model_rows_evaluated_total";
 /// Coalition values served from the per-request cache (counter).
 pub const CACHE_HITS: &str = "apportion_cache_hits_total";
+/// Computations stopped because their call was cancelled or dropped before
+/// the answer (counter).
+pub const COMPUTATIONS_CANCELLED: &str = "apportion_computations_cancelled_total";
 /// Model versions currently registered (gauge).
 pub const REGISTERED_MODELS: &str = "apportion_registered_models";
 
@@ -100,6 +103,10 @@ fn describe_metrics() {
     metrics::describe_counter!(COALITIONS_EVALUATED, "coalition values computed");
     metrics::describe_counter!(MODEL_ROWS_EVALUATED, "model rows predicted");
     metrics::describe_counter!(CACHE_HITS, "coalition values served from the request cache");
+    metrics::describe_counter!(
+        COMPUTATIONS_CANCELLED,
+        "computations stopped because their call was cancelled"
+    );
     metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
 }
 

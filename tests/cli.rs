@@ -21,6 +21,10 @@ fn apportion() -> Command {
         "APPORTION_DEFAULT_BUDGET_MS",
         "APPORTION_COMPUTE_THREADS",
         "APPORTION_MAX_MESSAGE_MIB",
+        "APPORTION_MAX_BUDGET_MS",
+        "APPORTION_MAX_EVALUATIONS",
+        "APPORTION_MAX_DRAWS",
+        "APPORTION_MAX_COALITION_ROWS",
         "RUST_LOG",
     ] {
         command.env_remove(variable);
@@ -60,14 +64,16 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     std::fs::write(
         &file,
         "address = \"127.0.0.1:7001\"\ncompute_threads = 3\nlog_format = \"json\"\n\
-         default_budget_ms = 50\ndata_dir = \"registry\"\n",
+         default_budget_ms = 50\ndata_dir = \"registry\"\nmax_draws = 128\nmax_budget_ms = 9\n",
     )
     .unwrap();
     let output = apportion()
         .args(["serve", "--print-config", "--compute-threads", "1"])
+        .args(["--max-evaluations", "99"])
         .env("APPORTION_CONFIG", &file)
         .env("APPORTION_ADDRESS", "127.0.0.1:7002")
         .env("APPORTION_COMPUTE_THREADS", "2")
+        .env("APPORTION_MAX_BUDGET_MS", "1234")
         .output()
         .unwrap();
     let printed: toml::Table = toml::from_str(&succeeded(output)).unwrap();
@@ -75,6 +81,9 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     assert_eq!(printed["address"].as_str(), Some("127.0.0.1:7002"), "env");
     assert_eq!(printed["log_format"].as_str(), Some("json"), "file");
     assert_eq!(printed["default_budget_ms"].as_integer(), Some(50), "file");
+    assert_eq!(printed["max_draws"].as_integer(), Some(128), "file");
+    assert_eq!(printed["max_budget_ms"].as_integer(), Some(1234), "env");
+    assert_eq!(printed["max_evaluations"].as_integer(), Some(99), "flag");
     let data_dir = dir.path().join("registry");
     assert_eq!(
         printed["data_dir"].as_str(),
@@ -110,6 +119,10 @@ fn the_shipped_settings_file_is_valid() {
     let printed: toml::Table = toml::from_str(&succeeded(output)).unwrap();
     assert_eq!(printed["data_dir"].as_str(), Some("/var/lib/apportion"));
     assert_eq!(printed["log_format"].as_str(), Some("json"));
+    assert_eq!(printed["max_budget_ms"].as_integer(), Some(60000));
+    assert_eq!(printed["max_evaluations"].as_integer(), Some(4194304));
+    assert_eq!(printed["max_draws"].as_integer(), Some(4096));
+    assert_eq!(printed["max_coalition_rows"].as_integer(), Some(1048576));
 }
 
 /// A server started from a config file, killed when dropped.

@@ -7,7 +7,9 @@
 use std::time::Instant;
 
 use apportion::engine::estimate::{msr, permutation, regression};
-use apportion::engine::{CachedGame, Coalition, Estimate, FnGame, Game, Kernel, Result, Stopping};
+use apportion::engine::{
+    CachedGame, CancelFlag, Coalition, Estimate, FnGame, Game, Kernel, Result, Stopping,
+};
 use apportion::model::{Link, Model, Tree, TreeEnsemble};
 use nalgebra::{DMatrix, DVector};
 use ndarray::ArrayView2;
@@ -468,6 +470,7 @@ fn tolerance_cap_and_deadline_stop_the_run() {
             tolerance: 0.05,
             max_evaluations: 1 << 20,
             deadline: None,
+            cancel: CancelFlag::new(),
         };
         let (estimate, used) = run_on_table(sampler, players, &table, &tolerance, 1);
         assert!(estimate.converged, "{sampler:?}");
@@ -481,6 +484,7 @@ fn tolerance_cap_and_deadline_stop_the_run() {
             tolerance: 1e-9,
             max_evaluations: 150,
             deadline: None,
+            cancel: CancelFlag::new(),
         };
         let (estimate, used) = run_on_table(sampler, players, &table, &tight, 1);
         assert!(
@@ -495,6 +499,7 @@ fn tolerance_cap_and_deadline_stop_the_run() {
             tolerance: 0.0,
             max_evaluations: 1 << 20,
             deadline: Some(Instant::now()),
+            cancel: CancelFlag::new(),
         };
         let (estimate, used) = run_on_table(sampler, players, &table, &past, 1);
         assert!(!estimate.converged && used <= 64, "{sampler:?} used {used}");

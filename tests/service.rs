@@ -312,7 +312,25 @@ async fn every_cell_of_the_grid_answers_and_the_registry_survives_a_restart() {
                     answer.attributions.iter().all(|a| a.value.is_finite()),
                     "{cell}"
                 );
-                assert!(answer.converged, "{cell}: 8 coalitions fit a 10 s budget");
+                // Exact over 8 coalitions; the random removals' draws leave
+                // std errors, converged only within the default tolerance
+                // (the proto's rule for tolerance = 0).
+                if matches!(
+                    removal,
+                    proto::Removal::Independent | proto::Removal::ConditionalGaussian
+                ) {
+                    let (full, empty) = (answer.value_full, answer.value_empty);
+                    let scale = (full - empty).abs().max(1e-3 * full.abs().max(empty.abs()));
+                    let tolerance = 0.01 * scale;
+                    let within = answer.attributions.iter().all(|a| a.std_error <= tolerance);
+                    assert_eq!(answer.converged, within, "{cell}");
+                    assert!(
+                        answer.attributions.iter().any(|a| a.std_error > 0.0),
+                        "{cell}: removal noise is reported"
+                    );
+                } else {
+                    assert!(answer.converged, "{cell}: 8 coalitions fit a 10 s budget");
+                }
                 assert_eq!(answer.version, 2, "{cell}: version 0 is the latest");
                 if efficient {
                     // Efficiency of the Shapley value and the constrained fit

@@ -14,8 +14,14 @@ pub enum ErrorKind {
     /// background cannot serve it (a non-finite output, a background with
     /// missing values under a removal that needs complete rows).
     FailedPrecondition,
-    /// A limit was reached: time, memory or a cap.
+    /// A limit was reached: memory or a cap.
     ResourceExhausted,
+    /// The deadline passed before an estimator that cannot return a
+    /// partial answer (an exact one) finished.
+    DeadlineExceeded,
+    /// Whoever asked no longer wants the answer (the call was cancelled or
+    /// dropped); the computation stopped early.
+    Cancelled,
     /// A capability this build does not have.
     Unimplemented,
     /// A resource outside the request (storage, a database) failed and
@@ -25,8 +31,9 @@ pub enum ErrorKind {
     Internal,
 }
 
-/// Why the engine refused a request. Nothing is computed when one is
-/// returned.
+/// Why the engine refused or stopped a request. Refusals come before any
+/// computing; only [`ErrorKind::DeadlineExceeded`] and
+/// [`ErrorKind::Cancelled`] end a computation that had started.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 #[error("{field}: {message}")]
 pub struct EngineError {

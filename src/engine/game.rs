@@ -1,6 +1,11 @@
 //! Cooperative games: the batched [`Game`] trait, the per-request
 //! [`CachedGame`] that never evaluates a coalition twice, and the
 //! [`ModelGame`] that is removal ∘ model ∘ target.
+//!
+//! A random removal makes each coalition value a mean of random draws, so
+//! games report, beside each value, its variance over those draws; the
+//! cache keeps both, and the estimators carry the variances into their std
+//! errors.
 
 use std::collections::HashMap;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -12,8 +17,8 @@ use super::coalition::Coalition;
 use super::error::{EngineError, Result};
 use super::model::{Link, Model};
 use super::players::Players;
-use super::removal::Removal;
-use super::target::{Target, averaging_scale, loss};
+use super::removal::{Noise, Removal};
+use super::target::{Target, averaging_scale, loss, loss_slope};
 
 /// A set function over `players()` players.
 pub trait Game: Sync {
@@ -22,6 +27,32 @@ pub trait Game: Sync {
     /// `out[i] = v(coalitions[i])`. Batched so one call can become one model
     /// call.
     fn values(&self, coalitions: &[Coalition], out: &mut [f64]);
+
+    /// Like [`Game::values`], and `variances[i]` = the variance of
+    /// `out[i]` over the removal's random draws (0 for a deterministic
+    /// game). Draws are seeded per coalition, so different coalitions'
+    /// noise is independent.
+    fn values_and_variances(
+        &self,
+        coalitions: &[Coalition],
+        out: &mut [f64],
+        variances: &mut [f64],
+    ) {
+        self.values(coalitions, out);
+        variances.fill(0.0);
+    }
+
+    /// Whether any value can have a nonzero variance; estimators skip the
+    /// noise bookkeeping when not.
+    fn is_noisy(&self) -> bool {
+        false
+    }
+
+    /// Model rows one coalition costs (1 for games without a model), so
+    /// callers can size batches by work rather than by coalitions.
+    fn rows_per_coalition(&self) -> usize {
+        1
+    }
 
     /// Model rows evaluated so far (0 for games without a model).
     fn model_rows(&self) -> u64 {
@@ -54,10 +85,13 @@ impl<F: Fn(Coalition) -> f64 + Sync> Game for FnGame<F> {
 }
 
 /// The per-request cache: each distinct coalition reaches the inner game
-/// once. Counts evaluations (distinct coalitions) and cache hits.
+/// once, and keeps its value with its variance, so a noisy value is the
+/// same wherever it is reused. Counts evaluations (distinct coalitions) and
+/// cache hits.
 pub struct CachedGame<'a> {
     inner: &'a dyn Game,
-    cache: DashMap<Coalition, f64>,
+    /// Value and variance of each coalition evaluated.
+    cache: DashMap<Coalition, (f64, f64)>,
     evaluations: AtomicU64,
     hits: AtomicU64,
 }
@@ -89,19 +123,20 @@ impl<'a> CachedGame<'a> {
     }
 }
 
-impl Game for CachedGame<'_> {
-    fn players(&self) -> usize {
-        self.inner.players()
-    }
-
-    fn values(&self, coalitions: &[Coalition], out: &mut [f64]) {
+impl CachedGame<'_> {
+    /// Values (and, if asked, variances) from the cache, evaluating the
+    /// coalitions it does not hold in one batch.
+    fn lookup(&self, coalitions: &[Coalition], out: &mut [f64], mut variances: Option<&mut [f64]>) {
         let mut misses: Vec<Coalition> = Vec::new();
         let mut first_miss: HashMap<Coalition, usize> = HashMap::new();
         let mut waiting: Vec<(usize, usize)> = Vec::new();
         let mut hits = 0;
         for (i, c) in coalitions.iter().enumerate() {
-            if let Some(v) = self.cache.get(c) {
-                out[i] = *v;
+            if let Some(entry) = self.cache.get(c) {
+                out[i] = entry.0;
+                if let Some(variances) = variances.as_deref_mut() {
+                    variances[i] = entry.1;
+                }
                 hits += 1;
             } else if let Some(&m) = first_miss.get(c) {
                 waiting.push((i, m));
@@ -114,17 +149,49 @@ impl Game for CachedGame<'_> {
         }
         if !misses.is_empty() {
             let mut fresh = vec![0.0; misses.len()];
-            self.inner.values(&misses, &mut fresh);
-            for (c, v) in misses.iter().zip(&fresh) {
-                self.cache.insert(*c, *v);
+            let mut fresh_variances = vec![0.0; misses.len()];
+            self.inner
+                .values_and_variances(&misses, &mut fresh, &mut fresh_variances);
+            for ((c, v), variance) in misses.iter().zip(&fresh).zip(&fresh_variances) {
+                self.cache.insert(*c, (*v, *variance));
             }
             for (i, m) in waiting {
                 out[i] = fresh[m];
+                if let Some(variances) = variances.as_deref_mut() {
+                    variances[i] = fresh_variances[m];
+                }
             }
         }
         self.evaluations
             .fetch_add(misses.len() as u64, Ordering::Relaxed);
         self.hits.fetch_add(hits, Ordering::Relaxed);
+    }
+}
+
+impl Game for CachedGame<'_> {
+    fn players(&self) -> usize {
+        self.inner.players()
+    }
+
+    fn values(&self, coalitions: &[Coalition], out: &mut [f64]) {
+        self.lookup(coalitions, out, None);
+    }
+
+    fn values_and_variances(
+        &self,
+        coalitions: &[Coalition],
+        out: &mut [f64],
+        variances: &mut [f64],
+    ) {
+        self.lookup(coalitions, out, Some(variances));
+    }
+
+    fn is_noisy(&self) -> bool {
+        self.inner.is_noisy()
+    }
+
+    fn rows_per_coalition(&self) -> usize {
+        self.inner.rows_per_coalition()
     }
 
     fn model_rows(&self) -> u64 {
@@ -200,15 +267,29 @@ impl<'a> ModelGame<'a> {
         };
         if matches!(target, Target::DatasetLoss { .. }) {
             let mut baseline = [0.0];
-            game.raw_values(&[Coalition::EMPTY], &mut baseline);
+            game.raw_values(&[Coalition::EMPTY], &mut baseline, None);
             game.baseline_loss = baseline[0];
         }
         Ok(game)
     }
 
     /// Coalition values before the DATASET_LOSS baseline is subtracted: the
-    /// mean loss for DATASET_LOSS, the value itself for other targets.
-    fn raw_values(&self, coalitions: &[Coalition], out: &mut [f64]) {
+    /// mean loss for DATASET_LOSS, the value itself for other targets. With
+    /// `variances`, also each value's variance over the removal's draws.
+    ///
+    /// The variance linearises the value in the draws (the delta method for
+    /// the losses): with `a_i` the slope of the target in instance `i`'s
+    /// averaged prediction, over `n` instances, each draw `d` contributes
+    /// `g_d = Σ_i a_i f(row_{i,d}) / n`, and the variance is that of the mean
+    /// of the `g_d` (of the pair means, for antithetic pairs). One instance's
+    /// draws share their seed with the others' (the same coalition), so the
+    /// sum over instances is taken before the spread.
+    fn raw_values(
+        &self,
+        coalitions: &[Coalition],
+        out: &mut [f64],
+        mut variances: Option<&mut [f64]>,
+    ) {
         let features = self.model.inputs();
         let per_coalition = self.removal.rows_per_coalition() * self.instances.nrows();
         let chunk = (BATCH_ROWS / per_coalition.max(1)).max(1);
@@ -218,8 +299,16 @@ impl<'a> ModelGame<'a> {
         let mut weights = vec![0.0; capacity];
         let mut outputs = vec![0.0; capacity];
         let block = self.removal.rows_per_coalition();
+        let noise = self.removal.noise();
+        let mut per_draw = vec![0.0; block];
+        let mut slopes = vec![0.0; self.instances.nrows()];
+        let instances = self.instances.nrows() as f64;
 
-        for (batch, values) in coalitions.chunks(chunk).zip(out.chunks_mut(chunk)) {
+        for (index, (batch, values)) in coalitions
+            .chunks(chunk)
+            .zip(out.chunks_mut(chunk))
+            .enumerate()
+        {
             let used = batch.len() * per_coalition;
             for (c, coalition) in batch.iter().enumerate() {
                 self.players.present_features(*coalition, &mut present);
@@ -241,20 +330,75 @@ impl<'a> ModelGame<'a> {
 
             for (c, value) in values.iter_mut().enumerate() {
                 let mut total = 0.0;
-                for i in 0..self.instances.nrows() {
+                for (i, slope) in slopes.iter_mut().enumerate() {
                     let start = c * per_coalition + i * block;
                     let averaged: f64 = outputs[start..start + block]
                         .iter()
                         .zip(&weights[start..start + block])
                         .map(|(o, w)| w * self.scale.apply(*o))
                         .sum();
-                    total += match self.target {
-                        Target::Output | Target::Probability => averaged,
-                        Target::Loss { label } => loss(self.scale, *label, averaged),
-                        Target::DatasetLoss { labels, .. } => loss(self.scale, labels[i], averaged),
+                    let (target, target_slope) = match self.target {
+                        Target::Output | Target::Probability => (averaged, 1.0),
+                        Target::Loss { label } => (
+                            loss(self.scale, *label, averaged),
+                            loss_slope(self.scale, *label, averaged),
+                        ),
+                        Target::DatasetLoss { labels, .. } => (
+                            loss(self.scale, labels[i], averaged),
+                            loss_slope(self.scale, labels[i], averaged),
+                        ),
                     };
+                    total += target;
+                    *slope = target_slope / instances;
                 }
-                *value = total / self.instances.nrows() as f64;
+                *value = total / instances;
+                let Some(variances) = variances.as_deref_mut() else {
+                    continue;
+                };
+                let slot = &mut variances[index * chunk + c];
+                if noise == Noise::None {
+                    *slot = 0.0;
+                    continue;
+                }
+                per_draw.fill(0.0);
+                for (i, slope) in slopes.iter().enumerate() {
+                    let start = c * per_coalition + i * block;
+                    for (g, o) in per_draw.iter_mut().zip(&outputs[start..start + block]) {
+                        *g += slope * self.scale.apply(*o);
+                    }
+                }
+                *slot = variance_of_mean(&per_draw, noise);
+            }
+        }
+    }
+}
+
+/// The variance of the mean of `draws`: the sample variance over the
+/// number of independent units (draws, or antithetic pairs averaged
+/// first); infinite with fewer than two units, where it cannot be told.
+fn variance_of_mean(draws: &[f64], noise: Noise) -> f64 {
+    let unit = if noise == Noise::AntitheticPairs {
+        2
+    } else {
+        1
+    };
+    let units = draws.len() / unit;
+    if units < 2 {
+        return f64::INFINITY;
+    }
+    let means = draws
+        .chunks_exact(unit)
+        .map(|pair| pair.iter().sum::<f64>() / unit as f64);
+    let mean = means.clone().sum::<f64>() / units as f64;
+    let squares: f64 = means.map(|m| (m - mean).powi(2)).sum();
+    squares / (units - 1) as f64 / units as f64
+}
+
+impl ModelGame<'_> {
+    fn subtract_baseline(&self, out: &mut [f64]) {
+        if matches!(self.target, Target::DatasetLoss { .. }) {
+            for v in out.iter_mut() {
+                *v = self.baseline_loss - *v;
             }
         }
     }
@@ -266,12 +410,36 @@ impl Game for ModelGame<'_> {
     }
 
     fn values(&self, coalitions: &[Coalition], out: &mut [f64]) {
-        self.raw_values(coalitions, out);
-        if matches!(self.target, Target::DatasetLoss { .. }) {
-            for v in out.iter_mut() {
-                *v = self.baseline_loss - *v;
-            }
+        self.raw_values(coalitions, out, None);
+        self.subtract_baseline(out);
+    }
+
+    /// For DATASET_LOSS the variance is that of the coalition's own loss:
+    /// the baseline `loss(∅)` is one shared number, so it moves every
+    /// value alike and cancels from every summary here; `v(∅)`'s reported
+    /// variance is that of `loss(∅)`, which is where the shared noise
+    /// enters the summaries.
+    fn values_and_variances(
+        &self,
+        coalitions: &[Coalition],
+        out: &mut [f64],
+        variances: &mut [f64],
+    ) {
+        if self.removal.noise() == Noise::None {
+            self.values(coalitions, out);
+            variances.fill(0.0);
+            return;
         }
+        self.raw_values(coalitions, out, Some(variances));
+        self.subtract_baseline(out);
+    }
+
+    fn is_noisy(&self) -> bool {
+        self.removal.noise() != Noise::None
+    }
+
+    fn rows_per_coalition(&self) -> usize {
+        self.removal.rows_per_coalition() * self.instances.nrows()
     }
 
     fn model_rows(&self) -> u64 {

@@ -9,6 +9,7 @@ use std::time::{Duration, Instant};
 
 use ndarray::ArrayView2;
 
+use super::cancel::CancelFlag;
 use super::coalition::Coalition;
 use super::error::{EngineError, ErrorKind, Result};
 use super::estimate::{self, Estimate, EstimatorKind, Stopping};
@@ -27,6 +28,10 @@ pub const DEFAULT_DRAWS: usize = 32;
 /// Most draws per coalition: each draw is a model row per coalition, and
 /// more than this buys no accuracy a budget could pay for.
 pub const MAX_DRAWS: usize = 4096;
+/// Most model rows one coalition value may cost by default (removal rows ×
+/// DATASET_LOSS rows): they are filled and predicted as one block, so this
+/// bounds a request's memory whatever its draws and data set.
+pub const DEFAULT_MAX_COALITION_ROWS: usize = 1 << 20;
 /// Kernel width for neighbour removal when the caller gives none.
 pub const DEFAULT_WIDTH: f64 = 1.0;
 /// Jobs predicted to take at most this long are cheaper to compute where
@@ -74,11 +79,14 @@ pub struct Request {
     pub estimator: Option<EstimatorKind>,
     pub budget: Duration,
     pub max_evaluations: u64,
-    /// Largest acceptable std error for sampled estimators; 0 lets the
-    /// engine use 1% of |v(all) − v(none)|.
+    /// Largest acceptable std error: where samplers stop, and whether an
+    /// exact answer over a random removal has converged; 0 lets the engine
+    /// choose ([`estimate::default_tolerance`]).
     pub tolerance: f64,
     pub seed: u64,
     pub enumeration_cap: usize,
+    /// Most model rows one coalition value may cost.
+    pub max_coalition_rows: usize,
 }
 
 impl Request {
@@ -96,6 +104,7 @@ impl Request {
             tolerance: 0.0,
             seed: 0,
             enumeration_cap: plan::DEFAULT_ENUMERATION_CAP,
+            max_coalition_rows: DEFAULT_MAX_COALITION_ROWS,
         }
     }
 }
@@ -140,10 +149,11 @@ enum Work {
     TreeExact,
     /// The linear closed form against the reference mean or fixed values.
     LinearExact,
-    /// Every coalition the summary needs.
-    Enumerate,
-    /// An anytime sampler stopping at the tolerance (0: 1% of the gap), the
-    /// evaluation cap or the deadline.
+    /// Every coalition the summary needs; the tolerance (0: the default)
+    /// decides whether removal noise leaves the answer unconverged.
+    Enumerate { tolerance: f64 },
+    /// An anytime sampler stopping at the tolerance (0: the default, see
+    /// [`estimate::default_tolerance`]), the evaluation cap or the deadline.
     Sample {
         sampler: Sampler,
         max_evaluations: u64,
@@ -205,9 +215,29 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         _ => 1,
     };
     let background_rows = model.background().nrows();
-    let rows_per_coalition = removal
-        .rows_per_coalition(background_rows)
-        .saturating_mul(instances);
+    let removal_rows = removal.rows_per_coalition(background_rows);
+    let rows_per_coalition = removal_rows.saturating_mul(instances);
+    if rows_per_coalition > request.max_coalition_rows {
+        let field = if instances > 1 {
+            "dataset"
+        } else if matches!(
+            removal,
+            ValidRemoval::Independent { .. } | ValidRemoval::ConditionalGaussian { .. }
+        ) {
+            "draws"
+        } else {
+            "removal"
+        };
+        return Err(EngineError::new(
+            field,
+            format!(
+                "one coalition value would cost {removal_rows} removal rows × {instances} \
+                 instances = {rows_per_coalition} model rows, over the maximum of {}; use fewer \
+                 draws or data set rows (or a removal with fewer rows)",
+                request.max_coalition_rows
+            ),
+        ));
+    }
     let shape = match model.structure() {
         Structure::Linear(_) => ModelShape::Linear,
         Structure::Trees(_) => ModelShape::Trees,
@@ -230,7 +260,9 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
     let work = match chosen.estimator {
         EstimatorKind::TreeExact => Work::TreeExact,
         EstimatorKind::LinearExact => Work::LinearExact,
-        EstimatorKind::Exact => Work::Enumerate,
+        EstimatorKind::Exact => Work::Enumerate {
+            tolerance: request.tolerance,
+        },
         sampled => Work::Sample {
             sampler: match (sampled, request.summary) {
                 (EstimatorKind::Permutation, _) => Sampler::Permutation,
@@ -284,8 +316,21 @@ impl Job {
     }
 
     /// Computes the explanation. Sampled estimators stop at `deadline` with
-    /// what they have.
+    /// what they have; exact ones fail with a deadline-exceeded error.
     pub fn run(self, deadline: Instant) -> Result<Explanation> {
+        self.run_cancellable(deadline, CancelFlag::new())
+    }
+
+    /// [`Job::run`], stopping with a cancelled error soon after `cancel` is
+    /// set (between batches of work, wherever the deadline is checked).
+    pub fn run_cancellable(self, deadline: Instant, cancel: CancelFlag) -> Result<Explanation> {
+        let stopping = Stopping {
+            tolerance: self.tolerance(),
+            max_evaluations: u64::MAX,
+            deadline: Some(deadline),
+            cancel,
+        };
+        stopping.check_cancelled()?;
         let model = self.model.as_ref();
         let players = model.players();
         let (estimate, counts) = match &self.work {
@@ -297,24 +342,26 @@ impl Job {
                     ValidRemoval::Fixed(values) => {
                         let row = ArrayView2::from_shape((1, values.len()), values)
                             .map_err(|_| self.not_planned("one reference row"))?;
-                        estimate::tree::explain(
+                        estimate::tree::explain_within(
                             ensemble,
                             players,
                             &self.instance,
                             row,
                             self.summary,
+                            &stopping,
                         )?
                     }
                     _ => {
                         let Some(compiled) = model.compiled_trees() else {
                             return Err(self.not_planned("the ensemble compiled at preparation"));
                         };
-                        compiled.explain(
+                        compiled.explain_within(
                             ensemble,
                             players,
                             model.background(),
                             &self.instance,
                             self.summary,
+                            &stopping,
                         )?
                     }
                 };
@@ -331,7 +378,7 @@ impl Job {
                 let estimate = estimate::linear::explain(form, players, &self.instance, reference)?;
                 (estimate, Counts::default())
             }
-            Work::Enumerate | Work::Sample { .. } => self.run_on_game(deadline)?,
+            Work::Enumerate { .. } | Work::Sample { .. } => self.run_on_game(stopping)?,
         };
         let finite = estimate.value_full.is_finite()
             && estimate.value_empty.is_finite()
@@ -355,7 +402,7 @@ impl Job {
 
     /// Enumeration and sampling: removal ∘ model ∘ target behind the
     /// per-request cache.
-    fn run_on_game(&self, deadline: Instant) -> Result<(Estimate, Counts)> {
+    fn run_on_game(&self, mut stopping: Stopping) -> Result<(Estimate, Counts)> {
         let model = self.model.as_ref();
         let background = model.background();
         let removal: Box<dyn Removal + '_> =
@@ -382,25 +429,22 @@ impl Job {
             &self.target,
         )?;
         let cached = CachedGame::new(&game);
+        // A deterministic exact answer has no std error to compare, so its
+        // ends are not looked up early (the counters stay as they were).
+        let sampled = matches!(self.work, Work::Sample { .. });
+        if stopping.tolerance == 0.0 && (sampled || cached.is_noisy()) {
+            let ends = [Coalition::EMPTY, Coalition::full(model.players().len())];
+            let mut values = [0.0; 2];
+            cached.values(&ends, &mut values);
+            stopping.tolerance = estimate::default_tolerance(values[0], values[1]);
+        }
         let estimate = match self.work {
             Work::Sample {
                 sampler,
                 max_evaluations,
-                tolerance,
+                ..
             } => {
-                let tolerance = if tolerance > 0.0 {
-                    tolerance
-                } else {
-                    let ends = [Coalition::EMPTY, Coalition::full(model.players().len())];
-                    let mut values = [0.0; 2];
-                    cached.values(&ends, &mut values);
-                    0.01 * (values[1] - values[0]).abs()
-                };
-                let stopping = Stopping {
-                    tolerance,
-                    max_evaluations,
-                    deadline: Some(deadline),
-                };
+                stopping.max_evaluations = max_evaluations;
                 let seed = self.seed;
                 match sampler {
                     Sampler::Permutation => {
@@ -417,7 +461,7 @@ impl Job {
                     }
                 }
             }
-            _ => estimate::exact::explain(&cached, self.summary)?,
+            _ => estimate::exact::explain_within(&cached, self.summary, &stopping)?,
         };
         let counts = Counts {
             coalitions: cached.evaluations(),
@@ -425,6 +469,15 @@ impl Job {
             cache_hits: cached.cache_hits(),
         };
         Ok((estimate, counts))
+    }
+
+    /// The tolerance the request gave (0: the default, taken from the
+    /// game's ends once they are known).
+    fn tolerance(&self) -> f64 {
+        match self.work {
+            Work::Enumerate { tolerance } | Work::Sample { tolerance, .. } => tolerance,
+            Work::TreeExact | Work::LinearExact => 0.0,
+        }
     }
 
     /// The planner chose work this model cannot do: a bug, not the

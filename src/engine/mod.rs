@@ -7,6 +7,7 @@
 //! [`PreparedModel`] (derived once per registration) and plans it into a
 //! [`Job`]; [`Job::run`] computes the [`Explanation`].
 
+pub mod cancel;
 pub mod coalition;
 pub mod error;
 pub mod estimate;
@@ -21,6 +22,7 @@ pub mod summary;
 pub mod target;
 pub mod trees;
 
+pub use cancel::CancelFlag;
 pub use coalition::{Coalition, MAX_PLAYERS};
 pub use error::{EngineError, ErrorKind, Result};
 pub use estimate::{Estimate, EstimatorKind, Stopping};

@@ -201,6 +201,19 @@ pub fn plan(input: &PlanInput) -> Result<Plan> {
         if let Some(why) = input.incompatibility(requested) {
             return Err(EngineError::new("estimator", why));
         }
+        if requested == EstimatorKind::Exact && input.enumerated() > input.max_evaluations {
+            return Err(EngineError::new(
+                "max_evaluations",
+                format!(
+                    "EXACT evaluates up to {} coalitions for {} over {} players, more than the {} \
+                     allowed: raise max_evaluations or choose a sampled estimator",
+                    input.enumerated(),
+                    input.summary.name(),
+                    input.players,
+                    input.max_evaluations
+                ),
+            ));
+        }
         let max_evaluations = if requested.is_exact() {
             input.max_evaluations
         } else {

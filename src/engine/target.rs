@@ -82,6 +82,19 @@ pub fn loss(link: Link, label: f64, prediction: f64) -> f64 {
     }
 }
 
+/// The derivative of [`loss`] in the prediction, for the delta-method
+/// variance of a loss of averaged random draws (any text on the delta
+/// method; the clamp of [`loss`] is applied first, as there).
+pub fn loss_slope(link: Link, label: f64, prediction: f64) -> f64 {
+    match link {
+        Link::Identity => -2.0 * (label - prediction),
+        Link::Logistic => {
+            let p = prediction.clamp(1e-15, 1.0 - 1e-15);
+            -label / p + (1.0 - label) / (1.0 - p)
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -93,5 +106,23 @@ mod tests {
         assert!((loss(Link::Logistic, 1.0, 0.8) - 0.8f64.ln().abs()).abs() < 1e-15);
         assert!((loss(Link::Logistic, 0.0, 0.8) - 0.2f64.ln().abs()).abs() < 1e-15);
         assert_eq!(loss(Link::Identity, 3.0, 1.0), 4.0);
+    }
+
+    #[test]
+    fn loss_slopes_match_central_differences() {
+        // The derivative against a central difference of the loss itself
+        // (common practice, no source).
+        for (link, label, p) in [
+            (Link::Logistic, 1.0, 0.8),
+            (Link::Logistic, 0.0, 0.3),
+            (Link::Identity, 3.0, 1.0),
+        ] {
+            let h = 1e-6;
+            let numeric = (loss(link, label, p + h) - loss(link, label, p - h)) / (2.0 * h);
+            assert!(
+                (loss_slope(link, label, p) - numeric).abs() < 1e-6,
+                "{link:?}"
+            );
+        }
     }
 }

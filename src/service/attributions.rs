@@ -1,6 +1,7 @@
-//! The Attributions service: convert the request, prepare a job against
-//! the registered model, run it where the call arrives or on the compute
-//! pool, and convert the answer back.
+//! The Attributions service: check the request against the server's
+//! maxima, convert it, prepare a job against the registered model, run it
+//! where the call arrives or on the compute pool (cancelled if the call goes
+//! away first), and convert the answer back.
 
 use std::sync::Arc;
 use std::time::Instant;
@@ -11,9 +12,9 @@ use super::convert;
 use super::deadline::{effective_budget, grpc_timeout};
 use super::proto;
 use super::proto::attributions_server::Attributions;
-use super::server::{Shared, observe};
+use super::server::{Limits, Shared, observe};
 use super::status::ServiceError;
-use crate::engine;
+use crate::engine::{self, CancelFlag, ErrorKind};
 use crate::telemetry;
 
 #[derive(Debug, Clone)]
@@ -36,7 +37,10 @@ impl AttributionsService {
             timeout,
             shared.deadline_margin,
         );
-        let request = convert::explain_request(&message, budget)?;
+        shared.limits.check(&message)?;
+        let mut request = convert::explain_request(&message, budget)?;
+        request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
+        request.max_coalition_rows = shared.limits.coalition_rows;
         let entry = shared.registry.get(&message.model_id, message.version)?;
         let job = engine::prepare(entry.prepared(), request)?;
         // Work that cannot start before the deadline (or, without one, within
@@ -52,16 +56,80 @@ impl AttributionsService {
         let answer = if job.runs_inline() {
             job.run(deadline)?
         } else {
-            shared
+            // Dropped with this future when the client cancels or the call's
+            // deadline passes: the computation then stops at its next check
+            // and frees its compute thread.
+            let cancel = CancelOnDrop(CancelFlag::new());
+            let flag = cancel.0.clone();
+            let answer = shared
                 .pool
-                .run(admit_by, move || job.run(deadline))
-                .await??
+                .run(admit_by, move || {
+                    let result = job.run_cancellable(deadline, flag);
+                    if let Err(error) = &result
+                        && error.kind == ErrorKind::Cancelled
+                    {
+                        metrics::counter!(telemetry::COMPUTATIONS_CANCELLED).increment(1);
+                    }
+                    result
+                })
+                .await??;
+            drop(cancel);
+            answer
         };
         metrics::histogram!(telemetry::EXPLAIN_SECONDS).record(answer.elapsed.as_secs_f64());
         metrics::counter!(telemetry::COALITIONS_EVALUATED).increment(answer.coalitions_evaluated);
         metrics::counter!(telemetry::MODEL_ROWS_EVALUATED).increment(answer.model_rows_evaluated);
         metrics::counter!(telemetry::CACHE_HITS).increment(answer.cache_hits);
         Ok(convert::explanation(&entry, &message, &answer, budget))
+    }
+}
+
+/// Sets its flag when dropped, so dropping the call's future cancels its
+/// computation.
+struct CancelOnDrop(CancelFlag);
+
+impl Drop for CancelOnDrop {
+    fn drop(&mut self) {
+        self.0.cancel();
+    }
+}
+
+impl Limits {
+    /// Refuses a request that asks for more work than this server allows,
+    /// naming the field and the maximum.
+    fn check(&self, request: &proto::ExplainRequest) -> Result<(), ServiceError> {
+        let budget_ms = self.budget.as_millis();
+        if u128::from(request.budget_ms) > budget_ms {
+            return Err(ServiceError::invalid(
+                "budget_ms",
+                format!(
+                    "{} ms is over this server's maximum of {budget_ms} ms; ask for at most that \
+                     (0 = the server default)",
+                    request.budget_ms
+                ),
+            ));
+        }
+        if request.max_evaluations > self.evaluations {
+            return Err(ServiceError::invalid(
+                "max_evaluations",
+                format!(
+                    "{} is over this server's maximum of {}; ask for at most that (0 = the default)",
+                    request.max_evaluations, self.evaluations
+                ),
+            ));
+        }
+        if request.draws > self.draws {
+            return Err(ServiceError::invalid(
+                "draws",
+                format!(
+                    "{} is over this server's maximum of {}; ask for at most that (0 = {})",
+                    request.draws,
+                    self.draws,
+                    engine::job::DEFAULT_DRAWS
+                ),
+            ));
+        }
+        Ok(())
     }
 }
 

@@ -13,6 +13,10 @@
 //! default_budget_ms = 200
 //! compute_threads = 4
 //! max_message_mib = 64
+//! max_budget_ms = 60000               # the most an Explain call may ask for
+//! max_evaluations = 4194304
+//! max_draws = 4096
+//! max_coalition_rows = 1048576
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -25,6 +29,7 @@ use std::time::Duration;
 use serde::{Deserialize, Serialize};
 
 use super::Config;
+use crate::engine::job::MAX_DRAWS;
 use crate::telemetry::LogFormat;
 
 /// Largest `max_message_mib`: gRPC frames carry a 32-bit length.
@@ -42,6 +47,10 @@ pub struct ConfigLayer {
     pub default_budget_ms: Option<u64>,
     pub compute_threads: Option<usize>,
     pub max_message_mib: Option<usize>,
+    pub max_budget_ms: Option<u64>,
+    pub max_evaluations: Option<u64>,
+    pub max_draws: Option<u32>,
+    pub max_coalition_rows: Option<usize>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -90,6 +99,10 @@ impl ConfigLayer {
             default_budget_ms: self.default_budget_ms.or(lower.default_budget_ms),
             compute_threads: self.compute_threads.or(lower.compute_threads),
             max_message_mib: self.max_message_mib.or(lower.max_message_mib),
+            max_budget_ms: self.max_budget_ms.or(lower.max_budget_ms),
+            max_evaluations: self.max_evaluations.or(lower.max_evaluations),
+            max_draws: self.max_draws.or(lower.max_draws),
+            max_coalition_rows: self.max_coalition_rows.or(lower.max_coalition_rows),
         }
     }
 
@@ -114,12 +127,40 @@ impl ConfigLayer {
                 format!("must be between 1 and {MAX_MESSAGE_MIB}; got {mib}"),
             ));
         }
+        // budget_ms is a 32-bit field: a larger maximum would never bind.
+        if let Some(ms) = self.max_budget_ms
+            && !(1..=u64::from(u32::MAX)).contains(&ms)
+        {
+            return Err(invalid(
+                "max_budget_ms",
+                format!("must be between 1 and {}; got {ms}", u32::MAX),
+            ));
+        }
+        if let Some(most) = self.max_evaluations
+            && most < 2
+        {
+            return Err(invalid(
+                "max_evaluations",
+                format!("must be at least 2 (v(all) and v(none)); got {most}"),
+            ));
+        }
+        if let Some(draws) = self.max_draws
+            && !(1..=MAX_DRAWS as u32).contains(&draws)
+        {
+            return Err(invalid(
+                "max_draws",
+                format!("must be between 1 and {MAX_DRAWS}, the engine's own limit; got {draws}"),
+            ));
+        }
+        if self.max_coalition_rows == Some(0) {
+            return Err(invalid("max_coalition_rows", "must be at least 1".into()));
+        }
         if let Some(filter) = &self.log_filter
             && let Err(error) = tracing_subscriber::EnvFilter::try_new(filter)
         {
             return Err(invalid("log_filter", format!("{filter:?}: {error}")));
         }
-        Ok(Config {
+        let config = Config {
             address: self.address.unwrap_or(defaults.address),
             data_dir: self.data_dir.or(defaults.data_dir),
             metrics_address: self.metrics_address.or(defaults.metrics_address),
@@ -132,8 +173,27 @@ impl ConfigLayer {
             max_message_bytes: self
                 .max_message_mib
                 .map_or(defaults.max_message_bytes, |mib| mib * 1024 * 1024),
+            max_budget: self
+                .max_budget_ms
+                .map_or(defaults.max_budget, Duration::from_millis),
+            max_evaluations: self.max_evaluations.unwrap_or(defaults.max_evaluations),
+            max_draws: self.max_draws.unwrap_or(defaults.max_draws),
+            max_coalition_rows: self
+                .max_coalition_rows
+                .unwrap_or(defaults.max_coalition_rows),
             ..defaults
-        })
+        };
+        if config.default_budget > config.max_budget {
+            return Err(invalid(
+                "default_budget_ms",
+                format!(
+                    "{} ms is over max_budget_ms ({} ms); lower it or raise the maximum",
+                    config.default_budget.as_millis(),
+                    config.max_budget.as_millis()
+                ),
+            ));
+        }
+        Ok(config)
     }
 }
 
@@ -152,6 +212,10 @@ impl Config {
             default_budget_ms: Some(self.default_budget.as_millis() as u64),
             compute_threads: Some(self.compute_threads),
             max_message_mib: Some(self.max_message_bytes / (1024 * 1024)),
+            max_budget_ms: Some(self.max_budget.as_millis() as u64),
+            max_evaluations: Some(self.max_evaluations),
+            max_draws: Some(self.max_draws),
+            max_coalition_rows: Some(self.max_coalition_rows),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -198,6 +262,8 @@ mod tests {
         let config = ConfigLayer {
             data_dir: Some("/srv/apportion".into()),
             max_message_mib: Some(8),
+            max_budget_ms: Some(5000),
+            max_draws: Some(64),
             ..ConfigLayer::default()
         }
         .resolve()
@@ -209,6 +275,8 @@ mod tests {
             .unwrap();
         assert_eq!(again.to_toml(), config.to_toml());
         assert_eq!(again.max_message_bytes, 8 * 1024 * 1024);
+        assert_eq!(again.max_budget, Duration::from_secs(5));
+        assert_eq!(again.max_draws, 64);
     }
 
     #[test]
@@ -251,6 +319,42 @@ mod tests {
                     ..ConfigLayer::default()
                 },
                 "max_message_mib",
+            ),
+            (
+                ConfigLayer {
+                    max_budget_ms: Some(u64::from(u32::MAX) + 1),
+                    ..ConfigLayer::default()
+                },
+                "max_budget_ms",
+            ),
+            (
+                ConfigLayer {
+                    max_evaluations: Some(1),
+                    ..ConfigLayer::default()
+                },
+                "max_evaluations",
+            ),
+            (
+                ConfigLayer {
+                    default_budget_ms: Some(500),
+                    max_budget_ms: Some(100),
+                    ..ConfigLayer::default()
+                },
+                "default_budget_ms",
+            ),
+            (
+                ConfigLayer {
+                    max_coalition_rows: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "max_coalition_rows",
+            ),
+            (
+                ConfigLayer {
+                    max_draws: Some(5000),
+                    ..ConfigLayer::default()
+                },
+                "max_draws",
             ),
             (
                 ConfigLayer {

@@ -26,7 +26,9 @@ impl ComputePool {
 
     /// Runs `work` once a permit is free; refuses with RESOURCE_EXHAUSTED
     /// when none is free by `admit_by`, so a queue never grows past what can
-    /// still be answered in time.
+    /// still be answered in time. Dropping the returned future does not stop
+    /// work that has started: the work must watch a cancel flag that the
+    /// caller sets (the Attributions service does).
     pub async fn run<T, F>(&self, admit_by: Instant, work: F) -> Result<T, ServiceError>
     where
         T: Send + 'static,

@@ -47,6 +47,19 @@ pub struct Config {
     pub compute_threads: usize,
     /// Largest request or response message accepted, in bytes.
     pub max_message_bytes: usize,
+    /// Largest `budget_ms` an Explain call may ask for: a call holds a
+    /// compute thread for up to its budget.
+    pub max_budget: Duration,
+    /// Largest `max_evaluations` a call may ask for: each evaluation is
+    /// kept in the per-request cache (tens of bytes) and costs its model
+    /// rows.
+    pub max_evaluations: u64,
+    /// Largest `draws` a call may ask for: each draw is a model row per
+    /// coalition, held in memory with the coalition's batch.
+    pub max_draws: u32,
+    /// Most model rows one coalition value may cost (draws or background
+    /// rows, times DATASET_LOSS rows): they are filled as one block.
+    pub max_coalition_rows: usize,
 }
 
 impl Default for Config {
@@ -61,6 +74,10 @@ impl Default for Config {
             deadline_margin: Duration::from_millis(5),
             compute_threads: std::thread::available_parallelism().map_or(2, |n| n.get()),
             max_message_bytes: 64 * 1024 * 1024,
+            max_budget: Duration::from_secs(60),
+            max_evaluations: 1 << 22,
+            max_draws: crate::engine::job::MAX_DRAWS as u32,
+            max_coalition_rows: crate::engine::job::DEFAULT_MAX_COALITION_ROWS,
         }
     }
 }
@@ -72,6 +89,18 @@ pub(super) struct Shared {
     pub(super) pool: ComputePool,
     pub(super) default_budget: Duration,
     pub(super) deadline_margin: Duration,
+    /// What one Explain call may ask for.
+    pub(super) limits: Limits,
+}
+
+/// The server's maxima for the request fields that size an Explain call's
+/// work; a request over one is refused naming the field and the maximum.
+#[derive(Debug, Clone, Copy)]
+pub(super) struct Limits {
+    pub(super) budget: Duration,
+    pub(super) evaluations: u64,
+    pub(super) draws: u32,
+    pub(super) coalition_rows: usize,
 }
 
 /// The state `run` serves: the registry and the settings the handlers need.
@@ -100,6 +129,12 @@ impl State {
                 pool: ComputePool::new(config.compute_threads),
                 default_budget: config.default_budget,
                 deadline_margin: config.deadline_margin,
+                limits: Limits {
+                    budget: config.max_budget,
+                    evaluations: config.max_evaluations,
+                    draws: config.max_draws,
+                    coalition_rows: config.max_coalition_rows,
+                },
             }),
             max_message_bytes: config.max_message_bytes,
         }

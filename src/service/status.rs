@@ -3,8 +3,10 @@
 //! alike), and each kind maps to one code: bad input is INVALID_ARGUMENT
 //! naming the API field, an unknown model NOT_FOUND, a model or background
 //! that cannot serve a well-formed request FAILED_PRECONDITION, a refused
-//! admission RESOURCE_EXHAUSTED, storage trouble UNAVAILABLE, and INTERNAL
-//! is kept for bugs.
+//! admission RESOURCE_EXHAUSTED, an exact computation stopped by its
+//! deadline DEADLINE_EXCEEDED (one stopped by its call's cancellation
+//! CANCELLED, which no caller is left to read), storage trouble UNAVAILABLE,
+//! and INTERNAL is kept for bugs.
 
 use tonic::{Code, Status};
 
@@ -81,6 +83,8 @@ fn code_of(kind: ErrorKind) -> Code {
         ErrorKind::NotFound => Code::NotFound,
         ErrorKind::FailedPrecondition => Code::FailedPrecondition,
         ErrorKind::ResourceExhausted => Code::ResourceExhausted,
+        ErrorKind::DeadlineExceeded => Code::DeadlineExceeded,
+        ErrorKind::Cancelled => Code::Cancelled,
         ErrorKind::Unimplemented => Code::Unimplemented,
         ErrorKind::Unavailable => Code::Unavailable,
         ErrorKind::Internal => Code::Internal,
@@ -169,6 +173,18 @@ mod tests {
         assert_eq!(
             status_of(&ServiceError::Internal("bug".into())).code(),
             Code::Internal
+        );
+        let stopped = |kind| ServiceError::Invalid(EngineError::of_kind(kind, "budget_ms", "late"));
+        let late = status_of(&stopped(ErrorKind::DeadlineExceeded));
+        assert_eq!(late.code(), Code::DeadlineExceeded);
+        assert!(
+            late.message().starts_with("budget_ms:"),
+            "{}",
+            late.message()
+        );
+        assert_eq!(
+            status_of(&stopped(ErrorKind::Cancelled)).code(),
+            Code::Cancelled
         );
     }
 }

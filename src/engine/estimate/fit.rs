@@ -2,17 +2,21 @@
 //! estimators: normal equations accumulated from complementary pairs, the
 //! fit under the efficiency constraint, and its std errors.
 
+use std::collections::HashMap;
+
 use nalgebra::{DMatrix, DVector};
 
 use crate::engine::coalition::Coalition;
 
 /// One sampled complementary pair: a coalition, `v(S) - v(∅)` and
-/// `v(all ∖ S) - v(∅)`, and the stratum it was drawn from.
+/// `v(all ∖ S) - v(∅)`, the stratum it was drawn from, and
+/// `Var v(S) + Var v(all ∖ S)` over the removal's draws.
 pub(super) struct PairSample {
     pub(super) coalition: Coalition,
     pub(super) value: f64,
     pub(super) complement_value: f64,
     pub(super) stratum: usize,
+    pub(super) noise: f64,
 }
 
 /// `A = Σ w x xᵀ` and `b = Σ w x y` over fitted coalitions, `x` being the
@@ -53,7 +57,7 @@ impl NormalEquations {
 /// equations' right-hand side moves the fit by `P δb`.
 pub(super) struct Fit {
     pub(super) values: DVector<f64>,
-    sensitivity: DMatrix<f64>,
+    pub(super) sensitivity: DMatrix<f64>,
 }
 
 /// Minimises `φᵀAφ - 2bᵀφ` subject to `Σ φ = total` by eliminating the
@@ -100,19 +104,38 @@ pub(super) fn solve_constrained(equations: &NormalEquations, total: f64) -> Opti
 /// stratum: `Var φ_i ≈ Σ_strata factor · Σ_{j∈stratum} (ψ_ji - mean)²`, with
 /// `factor = n / (n - 1)` for independent pairs and `(1 - m/N) m / (m - 1)`
 /// for `m` of `N` pairs drawn without replacement (any text on stratified
-/// sampling, e.g. Cochran, "Sampling Techniques", Wiley, 1977).
+/// sampling, e.g. Cochran, "Sampling Techniques", Wiley, 1977). The removal
+/// noise of a pair enters `ψ_j` as `w_j (ε_S - ε_S̄) P x`, of variance
+/// `w_j² noise_j (P x)²`; `noise_shares[s]` of it is added per pair of
+/// stratum `s`, for the part the factor takes away. A pair drawn `m` times
+/// reuses its cached values, so its noise enters `m` times at once: the
+/// spread misses `factor · m (m - 1)` times its variance (the covariance of
+/// reused values, as for the sample means in `sampling.rs`), added here.
 pub(super) fn std_errors(
     fit: &Fit,
     samples: &[PairSample],
     weights: &[f64],
     factors: &[f64],
+    noise_shares: &[f64],
     players: usize,
 ) -> Vec<f64> {
     let strata = factors.len();
+    let mut own_noise = vec![0.0; players];
     let mut count = vec![0u64; strata];
     let mut mean = vec![vec![0.0; players]; strata];
     let mut squares = vec![vec![0.0; players]; strata];
     let mut direction = vec![0.0; players];
+    // Draws of each pair, keyed by the smaller bit pattern of its two sides.
+    let key = |sample: &PairSample| {
+        let bits = sample.coalition.bits();
+        bits.min(sample.coalition.complement(players).bits())
+    };
+    let mut draws: HashMap<u128, u64> = HashMap::new();
+    if samples.iter().any(|sample| sample.noise != 0.0) {
+        for sample in samples {
+            *draws.entry(key(sample)).or_insert(0) += 1;
+        }
+    }
     for sample in samples {
         let complement = sample.coalition.complement(players);
         let predicted: f64 = sample.coalition.members().map(|i| fit.values[i]).sum();
@@ -133,6 +156,18 @@ pub(super) fn std_errors(
         }
         let scale = sign * weights[sample.stratum] * residual_gap;
         let s = sample.stratum;
+        let repeats = draws.get(&key(sample)).map_or(0, |m| m - 1) as f64;
+        let reused = if repeats > 0.0 && factors[s].is_finite() {
+            factors[s] * repeats
+        } else {
+            0.0
+        };
+        let noise = (noise_shares[s] + reused) * sample.noise * weights[s] * weights[s];
+        if noise != 0.0 {
+            for (slot, d) in own_noise.iter_mut().zip(&direction) {
+                *slot += noise * d * d;
+            }
+        }
         count[s] += 1;
         let n = count[s] as f64;
         for i in 0..players {
@@ -154,7 +189,8 @@ pub(super) fn std_errors(
                         factors[s] * squares[s][i]
                     }
                 })
-                .sum();
+                .sum::<f64>()
+                + own_noise[i];
             variance.sqrt()
         })
         .collect()

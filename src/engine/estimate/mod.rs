@@ -4,6 +4,12 @@
 //!
 //! Sampled estimators are anytime: they work in rounds and stop at the
 //! tolerance, the evaluation cap or the deadline, whichever comes first.
+//! Exact estimators cannot stop with half an answer: they check the
+//! deadline and the cancel flag between batches and fail when either trips.
+//!
+//! Every estimator's std errors include the removal's own noise: a random
+//! removal makes each coalition value a mean of random draws, with a
+//! variance the game reports.
 
 pub mod exact;
 mod fit;
@@ -15,6 +21,9 @@ mod sampling;
 pub mod tree;
 
 use std::time::Instant;
+
+use crate::engine::cancel::CancelFlag;
+use crate::engine::error::{EngineError, ErrorKind, Result};
 
 /// The estimator choices, as the API names them.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -49,16 +58,20 @@ impl EstimatorKind {
     }
 }
 
-/// When a sampled estimator stops.
-#[derive(Debug, Clone, Copy)]
+/// When an estimator stops.
+#[derive(Debug, Clone)]
 pub struct Stopping {
     /// Stop once every std error is at most this (same units as the values);
-    /// 0 disables the check.
+    /// 0 disables the check. An exact answer over a noisy game is
+    /// `converged` only if every std error is within it.
     pub tolerance: f64,
     /// Most distinct coalitions to evaluate.
     pub max_evaluations: u64,
-    /// Stop at this instant, with what has been gathered.
+    /// A sampler stops here with what it has; an exact estimator fails.
     pub deadline: Option<Instant>,
+    /// Set when the answer is no longer wanted: every estimator fails at
+    /// its next check.
+    pub cancel: CancelFlag,
 }
 
 impl Stopping {
@@ -67,11 +80,47 @@ impl Stopping {
             tolerance: 0.0,
             max_evaluations,
             deadline: None,
+            cancel: CancelFlag::new(),
         }
+    }
+
+    /// No cap, no deadline, no tolerance: for callers that run to the end.
+    pub fn unbounded() -> Stopping {
+        Stopping::evaluations(u64::MAX)
     }
 
     pub fn past_deadline(&self) -> bool {
         self.deadline.is_some_and(|d| Instant::now() >= d)
+    }
+
+    /// The error a sampler returns when it is cancelled between rounds.
+    pub(crate) fn check_cancelled(&self) -> Result<()> {
+        if self.cancel.is_cancelled() {
+            return Err(cancelled());
+        }
+        Ok(())
+    }
+
+    /// For estimators with no partial answer: fails when cancelled or past
+    /// the deadline. `progress` says how far the work got, for the message.
+    pub(crate) fn check_exact(
+        &self,
+        estimator: &str,
+        progress: impl FnOnce() -> String,
+    ) -> Result<()> {
+        self.check_cancelled()?;
+        if self.past_deadline() {
+            return Err(EngineError::of_kind(
+                ErrorKind::DeadlineExceeded,
+                "budget_ms",
+                format!(
+                    "{estimator} reached the deadline after {}; an exact answer cannot be cut \
+                     short: raise budget_ms (and the call's deadline) or choose a sampled estimator",
+                    progress()
+                ),
+            ));
+        }
+        Ok(())
     }
 
     /// Whether the largest std error meets the tolerance.
@@ -80,19 +129,50 @@ impl Stopping {
     }
 }
 
+/// The error of a computation whose caller cancelled it.
+pub(crate) fn cancelled() -> EngineError {
+    EngineError::of_kind(
+        ErrorKind::Cancelled,
+        "request",
+        "the call was cancelled before the computation finished",
+    )
+}
+
+/// The tolerance of a request that gives none: 1% of `|v(all) − v(none)|`,
+/// but never below 1% of a thousandth of the game's largest end, so a game
+/// whose ends coincide (the efficient summaries then sum to 0) converges
+/// once its std errors are negligible on the game's own scale instead of
+/// never; and the smallest positive number when both ends are 0, so an
+/// all-zero game converges at once (common practice, no source: a relative
+/// tolerance needs a scale, and the ends are the only scale known before
+/// sampling).
+pub fn default_tolerance(value_empty: f64, value_full: f64) -> f64 {
+    let magnitude = value_empty.abs().max(value_full.abs());
+    let scale = (value_full - value_empty).abs().max(1e-3 * magnitude);
+    if scale > 0.0 {
+        0.01 * scale
+    } else {
+        f64::MIN_POSITIVE
+    }
+}
+
 /// What an estimator found.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Estimate {
     /// One value per player, in player order.
     pub values: Vec<f64>,
-    /// One std error per player; 0 for exact estimators.
+    /// One std error per player: the sampling error of sampled estimators
+    /// and the removal's noise (random draws) for all; 0 for an exact
+    /// estimator over a deterministic removal.
     pub std_errors: Vec<f64>,
     /// `v(all)`.
     pub value_full: f64,
     /// `v(none)`.
     pub value_empty: f64,
-    /// False when a sampled estimator stopped at the cap or the deadline
-    /// before reaching the tolerance.
+    /// Whether every std error is within the tolerance: false when a
+    /// sampled estimator stopped at the cap or the deadline before reaching
+    /// it, or when removal noise leaves an exact answer's std errors above
+    /// it.
     pub converged: bool,
     /// For [`crate::engine::Summary::Selection`]: the chosen players in the
     /// order they were added, and the value `v(chosen)` reached.
@@ -115,6 +195,27 @@ impl Estimate {
             value_full,
             value_empty,
             converged: true,
+            selection: None,
+        }
+    }
+
+    /// An exact summary of a noisy game: its std errors come from the
+    /// removal's draws alone, and it has converged when they are within
+    /// `tolerance`.
+    pub fn exact_with_noise(
+        values: Vec<f64>,
+        std_errors: Vec<f64>,
+        value_full: f64,
+        value_empty: f64,
+        tolerance: f64,
+    ) -> Estimate {
+        let converged = std_errors.iter().all(|s| *s <= tolerance);
+        Estimate {
+            values,
+            std_errors,
+            value_full,
+            value_empty,
+            converged,
             selection: None,
         }
     }

@@ -2,11 +2,14 @@
 //! each one used for every player, either on the side that contains the
 //! player or on the side that does not.
 
+use std::collections::HashMap;
+
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
 use super::sampling::{
-    Budget, RunningMoments, check_players, require_evaluations, round_units, single_player,
+    Budget, RunningMoments, check_players, evaluate_round, require_evaluations, round_units,
+    single_player,
 };
 use super::{Estimate, Stopping};
 use crate::engine::coalition::Coalition;
@@ -23,7 +26,10 @@ const FIRST_SAMPLES: u64 = 32;
 /// data valuation framework for machine learning", AISTATS 2023). The std
 /// error is `sqrt(var_in / n_in + var_out / n_out)` from the two sample
 /// variances; it is infinite for a player with fewer than two samples on a
-/// side, whose value is then 0 if a side has none.
+/// side, whose value is then 0 if a side has none. Over a random removal a
+/// coalition drawn again reuses its cached noisy value; the covariance that
+/// adds is put back (see `SharedNoise` in `sampling.rs`: a coalition drawn
+/// `m` times adds `m (m - 1) Var v(S)` to its side).
 ///
 /// Needs at least 34 evaluations (the two ends and 32 samples), or `2^p` if
 /// fewer.
@@ -53,7 +59,15 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
 
     let mut coalitions = Vec::new();
     let mut values = Vec::new();
+    let mut variances = Vec::new();
+    // Times each coalition was drawn, and per player and side the
+    // covariance repeats add: Σ_S m_S (m_S - 1) Var v(S).
+    let noisy = game.is_noisy();
+    let mut times: HashMap<Coalition, u64> = HashMap::new();
+    let mut repeated_inside = vec![0.0; players];
+    let mut repeated_outside = vec![0.0; players];
     loop {
+        stopping.check_cancelled()?;
         let first = drawn == 0;
         if !first && stopping.past_deadline() {
             break;
@@ -77,13 +91,32 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
             break;
         }
         drawn += admitted;
-        values.resize(coalitions.len(), 0.0);
-        game.values(&coalitions, &mut values);
+        evaluate_round(game, &coalitions, &mut values, &mut variances);
         if first {
             value_empty = values[0];
             value_full = values[1];
         }
-        for (sample, value) in coalitions[offset..].iter().zip(&values[offset..]) {
+        for (k, (sample, value)) in coalitions[offset..]
+            .iter()
+            .zip(&values[offset..])
+            .enumerate()
+        {
+            if noisy {
+                let variance = variances[offset + k];
+                let seen = times.entry(*sample).or_insert(0);
+                // m (m + 1) - (m - 1) m = 2 m.
+                let added = 2.0 * *seen as f64 * variance;
+                *seen += 1;
+                if added != 0.0 {
+                    for player in 0..players {
+                        if sample.contains(player) {
+                            repeated_inside[player] += added;
+                        } else {
+                            repeated_outside[player] += added;
+                        }
+                    }
+                }
+            }
             for player in 0..players {
                 if sample.contains(player) {
                     inside[player].add(&[*value]);
@@ -102,6 +135,15 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
             let (mut se_with, mut se_without) = ([0.0], [0.0]);
             with.std_errors_into(&mut se_with);
             without.std_errors_into(&mut se_without);
+            for (se, moments, repeated) in [
+                (&mut se_with[0], with, repeated_inside[player]),
+                (&mut se_without[0], without, repeated_outside[player]),
+            ] {
+                let n = moments.count() as f64;
+                if repeated != 0.0 && n >= 2.0 {
+                    *se = (*se * *se + repeated / (n * (n - 1.0))).sqrt();
+                }
+            }
             std_errors[player] = se_with[0].hypot(se_without[0]);
         }
         if stopping.tolerance_met(&std_errors) {

@@ -5,7 +5,8 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
 use super::sampling::{
-    Budget, RunningMoments, check_players, require_evaluations, round_units, single_player,
+    Budget, RunningMoments, SharedNoise, check_players, evaluate_round, require_evaluations,
+    round_units, single_player,
 };
 use super::{Estimate, Stopping};
 use crate::engine::coalition::{Coalition, random_permutation};
@@ -23,7 +24,9 @@ const FIRST_PAIRS: u64 = 2;
 /// permutation as antithetic variate is common practice). Each permutation's
 /// contributions sum to `v(all) - v(none)`, so the estimate is efficient.
 /// The std error of a player is the sample std deviation of its per-pair
-/// averages over the square root of the number of pairs.
+/// averages over the square root of the number of pairs; over a random
+/// removal, with the noise that cached values shared between pairs add
+/// (see `SharedNoise` in `sampling.rs`).
 ///
 /// Needs at least `4p - 2` evaluations (two pairs), or `2^p` if fewer.
 pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Estimate> {
@@ -55,8 +58,12 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
     let mut unit = Vec::with_capacity(unit_cost as usize);
     let mut coalitions = Vec::new();
     let mut values = Vec::new();
+    let mut variances = Vec::new();
+    let mut shared = game.is_noisy().then(|| SharedNoise::new(players));
+    let (mut variance_empty, mut variance_full) = (0.0, 0.0);
     let mut contribution = vec![0.0; players];
     loop {
+        stopping.check_cancelled()?;
         let first = averages.count() == 0;
         if !first && stopping.past_deadline() {
             break;
@@ -88,11 +95,13 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
         if admitted == 0 {
             break;
         }
-        values.resize(coalitions.len(), 0.0);
-        game.values(&coalitions, &mut values);
+        evaluate_round(game, &coalitions, &mut values, &mut variances);
         if first {
             value_empty = values[0];
             value_full = values[1];
+            if let Some(v) = variances.get(..2) {
+                (variance_empty, variance_full) = (v[0], v[1]);
+            }
         }
         let unit_len = unit_cost as usize;
         for (k, order) in orders.chunks(players).enumerate() {
@@ -118,8 +127,39 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
                 contribution[player] = 0.5 * (joins_forward + joins_backward);
             }
             averages.add(&contribution);
+            if let Some(shared) = shared.as_mut() {
+                let unit = &coalitions[offset + k * unit_len..offset + (k + 1) * unit_len];
+                let unit_variances = &variances[offset + k * unit_len..offset + (k + 1) * unit_len];
+                // The prefix of length l (∅ and all at the ends) and its
+                // complement, with their variances.
+                let prefix = |l: usize| match l {
+                    0 => (Coalition::EMPTY, variance_empty),
+                    l if l == players => (full, variance_full),
+                    l => (unit[2 * (l - 1)], unit_variances[2 * (l - 1)]),
+                };
+                let complement = |l: usize| match l {
+                    0 => (full, variance_full),
+                    l if l == players => (Coalition::EMPTY, variance_empty),
+                    l => (unit[2 * (l - 1) + 1], unit_variances[2 * (l - 1) + 1]),
+                };
+                // The four values behind the player's contribution, which
+                // are distinct coalitions for p ≥ 2.
+                for (position, &player) in order.iter().enumerate() {
+                    for ((coalition, variance), c) in [
+                        (prefix(position + 1), 0.5),
+                        (prefix(position), -0.5),
+                        (complement(position), 0.5),
+                        (complement(position + 1), -0.5),
+                    ] {
+                        shared.add(coalition, player, c, variance);
+                    }
+                }
+            }
         }
         averages.std_errors_into(&mut std_errors);
+        if let Some(shared) = &shared {
+            shared.widen(averages.count(), &mut std_errors);
+        }
         if stopping.tolerance_met(&std_errors) {
             converged = true;
             break;

@@ -4,23 +4,24 @@
 
 use std::collections::HashSet;
 
-use nalgebra::DVector;
+use nalgebra::{DMatrix, DVector};
 use rand::distr::Distribution;
 use rand::distr::weighted::WeightedIndex;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
+#[cfg(doc)]
 use super::exact::ENUMERATION_LIMIT;
-use super::fit::{NormalEquations, PairSample, solve_constrained, std_errors};
-use super::sampling::{Budget, check_players, require_evaluations, round_units, single_player};
+use super::exact::enumerate;
+use super::fit::{Fit, NormalEquations, PairSample, solve_constrained, std_errors};
+use super::sampling::{
+    Budget, check_players, evaluate_round, require_evaluations, round_units, single_player,
+};
 use super::{Estimate, Stopping};
-use crate::engine::coalition::{Coalition, all_coalitions, random_of_size};
+use crate::engine::coalition::{Coalition, random_of_size};
 use crate::engine::error::{EngineError, Result};
 use crate::engine::game::{CachedGame, Game};
 use crate::engine::summary::Kernel;
-
-/// Coalitions asked of the game per call while enumerating for [`fit_all`].
-const ENUMERATION_BATCH: usize = 4096;
 
 /// The weighted fit by sampling: sizes `s` in `1..p` are drawn with
 /// probability proportional to `C(p, s) k(s)` (the kernel's share of
@@ -34,7 +35,11 @@ const ENUMERATION_BATCH: usize = 4096;
 ///
 /// Std errors linearise the constrained fit around the estimate: its error
 /// is a sum of independent per-pair terms, whose sample variance gives the
-/// std error (the sandwich form of a least-squares variance).
+/// std error (the sandwich form of a least-squares variance). Over a random
+/// removal the pairs' own noise is in that spread, the noise of `v(∅)` and
+/// `v(all)`, which every pair shares, is added through the constraint, and
+/// so is the covariance of a pair drawn more than once (pairs are drawn with
+/// replacement, and a repeat reuses the cached noisy values).
 ///
 /// Needs at least `2p + 4` evaluations, or `2^p` if fewer; fails if the
 /// sampled coalitions do not determine the fit.
@@ -75,7 +80,10 @@ pub fn paired(
 
     let mut coalitions = Vec::new();
     let mut values = Vec::new();
+    let mut variances = Vec::new();
+    let mut end_variances = (0.0, 0.0);
     loop {
+        stopping.check_cancelled()?;
         let first = samples.is_empty();
         // Past the deadline, rounds go on only until there is a fit.
         if result.is_some() && stopping.past_deadline() {
@@ -101,20 +109,24 @@ pub fn paired(
         if admitted == 0 {
             break;
         }
-        values.resize(coalitions.len(), 0.0);
-        game.values(&coalitions, &mut values);
+        evaluate_round(game, &coalitions, &mut values, &mut variances);
         if first {
             ends = (values[0], values[1]);
+            if let Some(v) = variances.get(..2) {
+                end_variances = (v[0], v[1]);
+            }
         }
-        for (pair, pair_values) in coalitions[offset..]
+        for (k, (pair, pair_values)) in coalitions[offset..]
             .chunks(2)
             .zip(values[offset..].chunks(2))
+            .enumerate()
         {
             let sample = PairSample {
                 coalition: pair[0],
                 value: pair_values[0] - ends.0,
                 complement_value: pair_values[1] - ends.0,
                 stratum: 0,
+                noise: pair_noise(&variances, offset + 2 * k),
             };
             equations.add_pair(1.0, &sample, players);
             samples.push(sample);
@@ -126,7 +138,9 @@ pub fn paired(
             } else {
                 n / (n - 1.0)
             };
-            let std_errors = std_errors(&fit, &samples, &[1.0], &[factor], players);
+            // Independent pairs: their spread holds all of their own noise.
+            let mut std_errors = std_errors(&fit, &samples, &[1.0], &[factor], &[0.0], players);
+            with_end_noise(&fit, &equations, &mut std_errors, end_variances);
             let met = stopping.tolerance_met(&std_errors);
             result = Some((fit.values, std_errors));
             if met {
@@ -155,7 +169,12 @@ pub fn paired(
 /// every stratum is complete the answer is exact (std errors 0, converged).
 ///
 /// Std errors linearise the fit as in [`paired`], with the stratified
-/// without-replacement variance (finite population correction `1 - m/N`).
+/// without-replacement variance (finite population correction `1 - m/N`),
+/// and the ends' removal noise as there. No pair repeats, so no cached noise
+/// is shared between pairs, but the correction would shrink the pairs' own
+/// noise with the sampling error, so the share it removes is put back: when
+/// every stratum is complete the std errors are the removal noise alone, as
+/// exact enumeration reports it.
 ///
 /// Needs at least `2 + 2 max(p, Σ_s min(N_s, 2))` evaluations.
 pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Estimate> {
@@ -191,7 +210,10 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
     let mut coalitions = Vec::new();
     let mut values = Vec::new();
     let mut planned: Vec<u64> = vec![0; strata.len()];
+    let mut variances = Vec::new();
+    let mut end_variances = (0.0, 0.0);
     loop {
+        stopping.check_cancelled()?;
         let first = samples.is_empty();
         // Past the deadline, rounds go on only until there is a fit.
         if result.is_some() && stopping.past_deadline() {
@@ -230,22 +252,27 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
                     value: 0.0,
                     complement_value: 0.0,
                     stratum: index,
+                    noise: 0.0,
                 });
             }
             stratum.drawn = planned[index];
         }
-        values.resize(coalitions.len(), 0.0);
-        game.values(&coalitions, &mut values);
+        evaluate_round(game, &coalitions, &mut values, &mut variances);
         if first {
             ends = (values[0], values[1]);
+            if let Some(v) = variances.get(..2) {
+                end_variances = (v[0], v[1]);
+            }
         }
         let new_samples = samples.len() - (coalitions.len() - offset) / 2;
-        for (sample, pair_values) in samples[new_samples..]
+        for (k, (sample, pair_values)) in samples[new_samples..]
             .iter_mut()
             .zip(values[offset..].chunks(2))
+            .enumerate()
         {
             sample.value = pair_values[0] - ends.0;
             sample.complement_value = pair_values[1] - ends.0;
+            sample.noise = pair_noise(&variances, offset + 2 * k);
         }
         // The weights change with every stratum's draw count, so the normal
         // equations are rebuilt from the stored pairs each round.
@@ -260,7 +287,16 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
         let complete = strata.iter().all(|s| s.drawn as f64 >= s.pairs);
         if let Some(fit) = solve_constrained(&equations, ends.1 - ends.0) {
             let factors: Vec<f64> = strata.iter().map(Stratum::variance_factor).collect();
-            let std_errors = std_errors(&fit, &samples, &weights, &factors, players);
+            // The finite population correction shrinks the spread by
+            // 1 - m/N, but the pairs' own removal noise does not shrink as
+            // a stratum fills: the m/N it takes away is put back.
+            let noise_shares: Vec<f64> = strata
+                .iter()
+                .map(|s| (s.drawn as f64 / s.pairs).min(1.0))
+                .collect();
+            let mut std_errors =
+                std_errors(&fit, &samples, &weights, &factors, &noise_shares, players);
+            with_end_noise(&fit, &equations, &mut std_errors, end_variances);
             let met = complete || stopping.tolerance_met(&std_errors);
             result = Some((fit.values, std_errors));
             if met {
@@ -280,26 +316,36 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
 /// ∅ and all, subject to `Σ phi = v(all) - v(∅)`. With the Shapley kernel
 /// this is the Shapley value ("A unified approach to interpreting model
 /// predictions", NeurIPS 2017). Takes at most
-/// [`ENUMERATION_LIMIT`] players.
+/// [`ENUMERATION_LIMIT`] players; fails at the deadline or when cancelled.
+///
+/// The fit is linear in the values: `phi = s + P (b - A s)` with
+/// `s = (v(all) - v(∅)) / p · 1`, `b = Σ_S k(S) x_S (v(S) - v(∅))` and `P` the
+/// fit's sensitivity, so `v(S)` enters with `P k(S) x_S`, `v(all)` with
+/// `e = (1 - P A 1) / p` and `v(∅)` with `-P u - e`, `u = Σ_S k(S) x_S`;
+/// the kernel depends on size alone, so `u` is a multiple of `1`, which `P`
+/// annihilates, leaving `-e`. Over a noisy game the std errors are
+/// `sqrt(Σ c² Var v)` over those.
 pub fn fit_all(game: &CachedGame, kernel: Kernel) -> Result<Estimate> {
+    fit_all_within(game, kernel, &Stopping::unbounded())
+}
+
+/// [`fit_all`], failing at the deadline or when cancelled; noisy std errors
+/// are within `stopping.tolerance` when it has converged.
+pub fn fit_all_within(game: &CachedGame, kernel: Kernel, stopping: &Stopping) -> Result<Estimate> {
     check_kernel(kernel)?;
     let players = game.players();
     check_players(players)?;
-    if players > ENUMERATION_LIMIT {
-        return Err(EngineError::new(
-            "estimator",
-            format!(
-                "the exact linear fit of {players} players needs 2^{players} coalitions; \
-                 the limit is {ENUMERATION_LIMIT} players: choose a sampled estimator"
-            ),
-        ));
-    }
-    let full = Coalition::full(players);
-    let mut ends = [0.0; 2];
-    game.values(&[Coalition::EMPTY, full], &mut ends);
-    let [empty, all] = ends;
+    let (values, variances) = enumerate(game, stopping, "the exact linear fit")?;
+    let (empty, all) = (values[0], values[values.len() - 1]);
     if players == 1 {
-        return Ok(Estimate::exact(vec![all - empty], all, empty));
+        let std_errors = variances.iter().sum::<f64>().sqrt();
+        return Ok(Estimate::exact_with_noise(
+            vec![all - empty],
+            vec![std_errors],
+            all,
+            empty,
+            stopping.tolerance,
+        ));
     }
     let weights: Vec<f64> = (0..=players)
         .map(|size| match size {
@@ -324,28 +370,84 @@ pub fn fit_all(game: &CachedGame, kernel: Kernel) -> Result<Estimate> {
             }
         }
     }
-    let coalitions: Vec<Coalition> = all_coalitions(players).collect();
-    let mut values = vec![0.0; ENUMERATION_BATCH.min(coalitions.len())];
-    for batch in coalitions.chunks(ENUMERATION_BATCH) {
-        let out = &mut values[..batch.len()];
-        game.values(batch, out);
-        for (coalition, value) in batch.iter().zip(out.iter()) {
-            let weight = weights[coalition.len()];
-            if weight != 0.0 {
-                for i in coalition.members() {
-                    equations.moment[i] += weight * (value - empty);
-                }
+    for (bits, value) in values.iter().enumerate() {
+        let coalition = Coalition::from_bits(bits as u128);
+        let weight = weights[coalition.len()];
+        if weight != 0.0 {
+            for i in coalition.members() {
+                equations.moment[i] += weight * (value - empty);
             }
         }
     }
     let fit = solve_constrained(&equations, all - empty).ok_or_else(|| {
         EngineError::new("kernel", "the weighted fit over all coalitions is singular")
     })?;
-    Ok(Estimate::exact(
-        fit.values.iter().copied().collect(),
+    let phi: Vec<f64> = fit.values.iter().copied().collect();
+    if variances.is_empty() {
+        return Ok(Estimate::exact(phi, all, empty));
+    }
+    // Σ_S k(S)² Var v(S) x_S x_Sᵀ, whose P · P diagonal is the proper
+    // coalitions' share of the variance.
+    let mut spread = DMatrix::<f64>::zeros(players, players);
+    for (bits, variance) in variances.iter().enumerate() {
+        let coalition = Coalition::from_bits(bits as u128);
+        let weight = weights[coalition.len()];
+        let scaled = weight * weight * variance;
+        if scaled != 0.0 {
+            for i in coalition.members() {
+                for j in coalition.members() {
+                    spread[(i, j)] += scaled;
+                }
+            }
+        }
+    }
+    let sensitivity = &fit.sensitivity;
+    let proper = sensitivity * spread * sensitivity;
+    let ends = end_coefficients(&fit, &equations);
+    let (variance_empty, variance_all) = (variances[0], variances[variances.len() - 1]);
+    let std_errors = (0..players)
+        .map(|i| {
+            (proper[(i, i)] + ends[i] * ends[i] * variance_all + ends[i] * ends[i] * variance_empty)
+                .max(0.0)
+                .sqrt()
+        })
+        .collect();
+    Ok(Estimate::exact_with_noise(
+        phi,
+        std_errors,
         all,
         empty,
+        stopping.tolerance,
     ))
+}
+
+/// `e = (1 - P A 1) / p`: how the fit moves with `v(all) - v(∅)` through
+/// the efficiency constraint. A sampled fit's pair-based std errors hold
+/// the constraint fixed, so the ends' own noise enters through this.
+fn end_coefficients(fit: &Fit, equations: &NormalEquations) -> DVector<f64> {
+    let players = equations.moment.len();
+    let ones = DVector::from_element(players, 1.0);
+    (&ones - &fit.sensitivity * (&equations.gram * &ones)) / players as f64
+}
+
+/// Adds the ends' removal noise to a sampled fit's std errors: `v(∅)` and
+/// `v(all)` are shared by every pair, so their noise is not in the pairs'
+/// spread. `v(∅)` enters with `-e` here, since every pair's `v(S) - v(∅)`
+/// and `v(all ∖ S) - v(∅)` move together and `P` annihilates `1`.
+fn with_end_noise(
+    fit: &Fit,
+    equations: &NormalEquations,
+    std_errors: &mut [f64],
+    end_variances: (f64, f64),
+) {
+    let noise = end_variances.0 + end_variances.1;
+    if noise == 0.0 {
+        return;
+    }
+    let ends = end_coefficients(fit, equations);
+    for (se, e) in std_errors.iter_mut().zip(ends.iter()) {
+        *se = (*se * *se + e * e * noise).sqrt();
+    }
 }
 
 fn check_kernel(kernel: Kernel) -> Result<()> {
@@ -399,6 +501,14 @@ fn binomial(n: usize, k: usize) -> f64 {
         value = value * (n - k + i) as f64 / i as f64;
     }
     value
+}
+
+/// `Var v(S) + Var v(all ∖ S)` of the pair at `index` (0 for a
+/// deterministic game, whose round has no variances).
+fn pair_noise(variances: &[f64], index: usize) -> f64 {
+    variances
+        .get(index..index + 2)
+        .map_or(0.0, |pair| pair[0] + pair[1])
 }
 
 /// Ends a regression run: the last fit, or an error if no round produced

@@ -2,7 +2,7 @@
 //! evaluation budget that keeps the cache within its cap, the refusals of
 //! games no sampler can take, and running moments for std errors.
 
-use std::collections::HashSet;
+use std::collections::{HashMap, HashSet};
 
 use super::{Estimate, Stopping};
 use crate::engine::coalition::{Coalition, MAX_PLAYERS};
@@ -24,6 +24,74 @@ pub(super) fn round_units(drawn: u64, first: u64, unit_cost: u64) -> u64 {
     }
     let most = (ROUND_COALITIONS / unit_cost.max(1)).max(first);
     drawn.clamp(first, most)
+}
+
+/// The round's values, and their variances when the game is noisy (left
+/// empty otherwise).
+pub(super) fn evaluate_round(
+    game: &CachedGame,
+    coalitions: &[Coalition],
+    values: &mut Vec<f64>,
+    variances: &mut Vec<f64>,
+) {
+    values.resize(coalitions.len(), 0.0);
+    if game.is_noisy() {
+        variances.resize(coalitions.len(), 0.0);
+        game.values_and_variances(coalitions, values, variances);
+    } else {
+        variances.clear();
+        game.values(coalitions, values);
+    }
+}
+
+/// The removal noise a sample mean's std error misses when samples share
+/// cached coalition values. A sample `k` is `X_k = Σ_S c_kS v(S)`; over the
+/// noise of the `v(S)` (independent across coalitions, fixed across the
+/// samples that reuse them) the mean's variance is
+/// `Σ_S C_S² Var v(S) / n²` with `C_S = Σ_k c_kS`, while the sample variance
+/// over `n` estimates only `Σ_S (Σ_k c_kS² - C_S² / n) Var v(S) / (n (n-1))`
+/// of it; the difference is `Σ_S (C_S² - Σ_k c_kS²) Var v(S) / (n (n-1))`,
+/// the covariance that reuse creates (derived here from the expectation of
+/// the sample variance; common practice, no source). Kept per player,
+/// updated one coefficient at a time.
+pub(super) struct SharedNoise {
+    /// `C_S` so far, per (coalition, player).
+    totals: HashMap<(Coalition, u8), f64>,
+    /// `Σ_S (C_S² - Σ_k c_kS²) Var v(S)` per player.
+    cross: Vec<f64>,
+}
+
+impl SharedNoise {
+    pub(super) fn new(players: usize) -> SharedNoise {
+        SharedNoise {
+            totals: HashMap::new(),
+            cross: vec![0.0; players],
+        }
+    }
+
+    /// Sample coefficient `c` of `coalition`'s value (of variance
+    /// `variance`) in `player`'s sample. Each (sample, coalition, player)
+    /// must come once, with its whole coefficient.
+    pub(super) fn add(&mut self, coalition: Coalition, player: usize, c: f64, variance: f64) {
+        if variance == 0.0 {
+            return;
+        }
+        let total = self.totals.entry((coalition, player as u8)).or_insert(0.0);
+        // (C + c)² - C² - c² = 2 c C: the new cross terms.
+        self.cross[player] += 2.0 * c * *total * variance;
+        *total += c;
+    }
+
+    /// Adds the missing term to std errors of means over `samples` samples.
+    pub(super) fn widen(&self, samples: u64, std_errors: &mut [f64]) {
+        if samples < 2 {
+            return;
+        }
+        let n = samples as f64;
+        for (se, cross) in std_errors.iter_mut().zip(&self.cross) {
+            *se = (*se * *se + cross / (n * (n - 1.0))).max(0.0).sqrt();
+        }
+    }
 }
 
 /// Refuses games no sampler can take.

@@ -8,10 +8,13 @@
 //! the path only the instance x satisfies (set A), and none of the players whose
 //! splits only z satisfies (set B). So the leaf contributes the game
 //! `v · 1[A ⊆ S, S ∩ B = ∅]`, whose Shapley and Banzhaf values have closed forms.
+//!
+//! The walk checks the deadline and the cancel flag every few reference rows
+//! (or compiled trees) and fails when either trips.
 
 use ndarray::{ArrayView1, ArrayView2, Axis, aview1};
 
-use super::Estimate;
+use super::{Estimate, Stopping};
 use crate::engine::error::{EngineError, Result};
 use crate::engine::model::Model;
 use crate::engine::players::Players;
@@ -37,10 +40,34 @@ pub fn explain(
     references: ArrayView2<'_, f64>,
     summary: Summary,
 ) -> Result<Estimate> {
+    explain_within(
+        ensemble,
+        players,
+        instance,
+        references,
+        summary,
+        &Stopping::unbounded(),
+    )
+}
+
+/// [`explain`], failing when cancelled or past the deadline, checked after
+/// every few reference rows (an exact answer has no partial
+/// form).
+pub fn explain_within(
+    ensemble: &TreeEnsemble,
+    players: &Players,
+    instance: &[f64],
+    references: ArrayView2<'_, f64>,
+    summary: Summary,
+    stopping: &Stopping,
+) -> Result<Estimate> {
     check_request(ensemble, players, instance, references, summary)?;
     let shares = Shares::new(summary, players.len());
     let mut walk = Walk::new(players.len());
-    for reference in references.rows() {
+    for (row, reference) in references.rows().into_iter().enumerate() {
+        if row % ROWS_PER_CHECK == 0 {
+            check_progress(stopping, row, references.nrows())?;
+        }
         for tree in ensemble.trees() {
             walk.add_tree(tree, players, instance, reference, &shares);
         }
@@ -54,6 +81,20 @@ pub fn explain(
     ensemble.predict(references, &mut reference_outputs);
     let value_empty = reference_outputs.iter().sum::<f64>() / rows;
     Ok(Estimate::exact(values, full[0], value_empty))
+}
+
+/// Reference rows walked between two checks of the deadline: one row costs
+/// a pass over every tree, so a few rows are already tens of microseconds.
+pub(crate) const ROWS_PER_CHECK: usize = 8;
+
+/// Trees of the compiled form summed between two checks.
+pub(crate) const TREES_PER_CHECK: usize = 64;
+
+/// The tree algorithm's stop check, saying how far it got.
+pub(crate) fn check_progress(stopping: &Stopping, done: usize, of: usize) -> Result<()> {
+    stopping.check_exact("the exact tree algorithm", || {
+        format!("{done} of {of} steps")
+    })
 }
 
 /// The checks every exact tree explanation makes before any work.

@@ -7,9 +7,9 @@ use nalgebra::{Cholesky, DMatrix, DVector, SymmetricEigen};
 use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 use rand_distr::{Distribution, StandardNormal};
 
-use super::Removal;
 use super::independent::coalition_rng;
 use super::marginal::{require_finite, require_rows};
+use super::{Noise, Removal};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -241,6 +241,10 @@ impl<'a> ConditionalGaussian<'a> {
 impl Removal for ConditionalGaussian<'_> {
     fn rows_per_coalition(&self) -> usize {
         self.draws
+    }
+
+    fn noise(&self) -> Noise {
+        Noise::AntitheticPairs
     }
 
     fn fill(

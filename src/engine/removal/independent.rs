@@ -6,8 +6,8 @@ use ndarray::{ArrayView1, ArrayView2, ArrayViewMut2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
-use super::Removal;
 use super::marginal::require_rows;
+use super::{Noise, Removal};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::{EngineError, Result};
 
@@ -40,6 +40,10 @@ impl<'a> Independent<'a> {
 impl Removal for Independent<'_> {
     fn rows_per_coalition(&self) -> usize {
         self.draws
+    }
+
+    fn noise(&self) -> Noise {
+        Noise::IndependentDraws
     }
 
     fn fill(

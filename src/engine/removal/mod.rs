@@ -30,12 +30,32 @@ pub enum RemovalKind {
     ConditionalNeighbors,
 }
 
+/// How a removal's rows for one coalition vary with its seed, which decides
+/// how the spread of their values becomes the variance of the coalition
+/// value.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Noise {
+    /// The rows are fixed (fixed values, background rows, neighbour
+    /// weights): the value has no variance.
+    None,
+    /// Equally weighted independent draws.
+    IndependentDraws,
+    /// Equally weighted antithetic pairs: rows `2k` and `2k + 1` are
+    /// dependent, the pairs independent.
+    AntitheticPairs,
+}
+
 /// Fills the rows that stand for "the instance with only these features
 /// present". Implementations borrow what was derived from the background
 /// and write straight into the caller's rows: no allocation per row.
 pub trait Removal: Send + Sync {
     /// Rows (and weights) one coalition costs.
     fn rows_per_coalition(&self) -> usize;
+
+    /// How the rows of one coalition are drawn.
+    fn noise(&self) -> Noise {
+        Noise::None
+    }
 
     /// Writes `rows_per_coalition()` rows into `rows` (shape `rows × features`):
     /// `x[j]` where `present[j]`, a fill-in value otherwise; and one weight

@@ -17,9 +17,12 @@
 
 use ndarray::{ArrayView2, Axis, aview1};
 
-use super::{Shares, Walk, check_background, check_instance, check_summary};
+use super::{
+    ROWS_PER_CHECK, Shares, TREES_PER_CHECK, Walk, check_background, check_instance,
+    check_progress, check_summary,
+};
 use crate::engine::error::{EngineError, Result};
-use crate::engine::estimate::Estimate;
+use crate::engine::estimate::{Estimate, Stopping};
 use crate::engine::model::Model;
 use crate::engine::players::Players;
 use crate::engine::summary::Summary;
@@ -255,6 +258,27 @@ impl CompiledTrees {
         instance: &[f64],
         summary: Summary,
     ) -> Result<Estimate> {
+        self.explain_within(
+            ensemble,
+            players,
+            background,
+            instance,
+            summary,
+            &Stopping::unbounded(),
+        )
+    }
+
+    /// [`CompiledTrees::explain`], failing when cancelled or past the
+    /// deadline (checked every few trees and reference rows).
+    pub fn explain_within(
+        &self,
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        instance: &[f64],
+        summary: Summary,
+        stopping: &Stopping,
+    ) -> Result<Estimate> {
         check_summary(summary)?;
         check_background(ensemble, players, background)?;
         check_instance(ensemble, instance)?;
@@ -280,7 +304,11 @@ impl CompiledTrees {
         // pattern by its row count, the per-row trees add row by row.
         let mut totals = vec![0.0; players.len()];
         let mut fails = Vec::new();
-        for pattern in self.forms.iter().flatten() {
+        let steps = self.forms.len() + background.nrows();
+        for (done, pattern) in self.forms.iter().flatten().enumerate() {
+            if done % TREES_PER_CHECK == 0 {
+                check_progress(stopping, done, steps)?;
+            }
             pattern.add(instance, &shares, &mut fails, &mut totals);
         }
         let row_trees: Vec<&Tree> = ensemble
@@ -292,7 +320,10 @@ impl CompiledTrees {
             .collect();
         if !row_trees.is_empty() {
             let mut walk = Walk::new(players.len());
-            for reference in background.rows() {
+            for (row, reference) in background.rows().into_iter().enumerate() {
+                if row % ROWS_PER_CHECK == 0 {
+                    check_progress(stopping, self.forms.len() + row, steps)?;
+                }
                 for tree in &row_trees {
                     walk.add_tree(tree, players, instance, reference, &shares);
                 }

@@ -1,0 +1,286 @@
+//! Deadlines, cancellation and the server's maxima over loopback gRPC: an
+//! exact call that cannot finish in its budget fails with
+//! DEADLINE_EXCEEDED; a call its client abandons stops computing (seen
+//! through the cancellation counter on the metrics endpoint) and frees its
+//! compute thread; requests at the type maxima of the fields that size work
+//! (and a data set whose rows times the draws pass the rows one coalition
+//! may cost) get INVALID_ARGUMENT naming the field and the maximum; and the
+//! server
+//! keeps serving after each.
+
+mod support;
+
+use std::net::SocketAddr;
+use std::time::Duration;
+
+use apportion::service::Config;
+use apportion::service::proto::{self, register_model_request::Model};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use tonic::Code;
+
+const PLAYERS: usize = 22;
+
+/// A linear model on 22 features with 64 background rows: EXACT under
+/// MARGINAL removal evaluates 2^22 coalitions of 64 rows each (about 268
+/// million model rows), far beyond any budget below and seconds of work
+/// even on a fast machine.
+fn wide_model() -> proto::RegisterModelRequest {
+    let mut rng = ChaCha8Rng::seed_from_u64(7);
+    let rows = 64;
+    proto::RegisterModelRequest {
+        model_id: "wide".into(),
+        features: (0..PLAYERS)
+            .map(|j| proto::Feature {
+                name: format!("x{j}"),
+                ..Default::default()
+            })
+            .collect(),
+        model: Some(Model::Linear(proto::LinearModel {
+            weights: (0..PLAYERS).map(|j| 0.1 * j as f64 - 1.0).collect(),
+            intercept: 0.3,
+        })),
+        link: proto::Link::Identity as i32,
+        background: Some(proto::Matrix {
+            rows: rows as u32,
+            cols: PLAYERS as u32,
+            values: (0..rows * PLAYERS)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect(),
+        }),
+        ..Default::default()
+    }
+}
+
+/// EXACT enumeration of the wide model, which the planner takes as asked.
+fn exact_request(budget_ms: u32) -> proto::ExplainRequest {
+    proto::ExplainRequest {
+        model_id: "wide".into(),
+        instance: vec![0.5; PLAYERS],
+        removal: proto::Removal::Marginal as i32,
+        estimator: proto::Estimator::Exact as i32,
+        budget_ms,
+        max_evaluations: 1 << PLAYERS,
+        ..Default::default()
+    }
+}
+
+/// A cheap call that must still be answered: permutation sampling with a
+/// small cap.
+fn small_request() -> proto::ExplainRequest {
+    proto::ExplainRequest {
+        model_id: "wide".into(),
+        instance: vec![0.5; PLAYERS],
+        removal: proto::Removal::Marginal as i32,
+        estimator: proto::Estimator::Permutation as i32,
+        budget_ms: 10_000,
+        max_evaluations: 200,
+        ..Default::default()
+    }
+}
+
+/// One HTTP/1.0 GET of the metrics endpoint, read to the end.
+async fn scrape(address: SocketAddr) -> std::io::Result<String> {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let mut stream = tokio::net::TcpStream::connect(address).await?;
+    stream
+        .write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
+        .await?;
+    let mut response = Vec::new();
+    stream.read_to_end(&mut response).await?;
+    Ok(String::from_utf8_lossy(&response).into_owned())
+}
+
+/// The value of an unlabelled counter in a Prometheus text exposition
+/// (prometheus.io, "Exposition formats"), 0 while it is absent.
+fn counter(body: &str, name: &str) -> f64 {
+    body.lines()
+        .find_map(|line| {
+            line.strip_prefix(name)?
+                .strip_prefix(' ')?
+                .trim()
+                .parse()
+                .ok()
+        })
+        .unwrap_or(0.0)
+}
+
+#[tokio::test]
+async fn a_cancelled_exact_call_stops_computing_and_the_server_keeps_serving() {
+    let port = std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
+    let metrics = SocketAddr::from(([127, 0, 0, 1], port));
+    // Installed from a plain thread so the exporter runs on its own
+    // runtime, not this test's.
+    std::thread::spawn(move || apportion::telemetry::install_metrics(metrics))
+        .join()
+        .unwrap()
+        .unwrap();
+
+    let dir = tempfile::tempdir().unwrap();
+    // One compute thread: if the cancelled computation kept it, no later
+    // call could be computed.
+    let server = support::start_with(Config {
+        data_dir: Some(dir.path().to_path_buf()),
+        compute_threads: 1,
+        max_budget: Duration::from_secs(3600),
+        ..Config::default()
+    })
+    .await;
+    server
+        .registry_client()
+        .register_model(wide_model())
+        .await
+        .unwrap();
+
+    // An hour's budget and no gRPC deadline: only the client's cancelling
+    // can stop it early.
+    let mut client = server.attributions_client();
+    let call = tokio::spawn(async move { client.explain(exact_request(3_600_000)).await });
+    // Give the call time to reach the compute thread (not an assertion:
+    // a call dropped before it starts computing is counted too, since the
+    // computation checks the flag before its first batch).
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    assert!(
+        !call.is_finished(),
+        "2^22 coalitions cannot be done already"
+    );
+    call.abort();
+    assert!(call.await.unwrap_err().is_cancelled());
+
+    let mut cancelled = 0.0;
+    for _attempt in 0..600 {
+        if let Ok(body) = scrape(metrics).await {
+            cancelled = counter(&body, "apportion_computations_cancelled_total");
+            if cancelled >= 1.0 {
+                break;
+            }
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    assert_eq!(
+        cancelled, 1.0,
+        "the computation did not report a cancellation"
+    );
+
+    // The one compute thread is free again.
+    let answer = server
+        .attributions_client()
+        .explain(small_request())
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(answer.attributions.len(), PLAYERS);
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn an_exact_call_past_its_budget_fails_with_deadline_exceeded() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    server
+        .registry_client()
+        .register_model(wide_model())
+        .await
+        .unwrap();
+    let status = server
+        .attributions_client()
+        .explain(exact_request(50))
+        .await
+        .unwrap_err();
+    assert_eq!(status.code(), Code::DeadlineExceeded, "{status:?}");
+    assert!(
+        status.message().starts_with("budget_ms:"),
+        "{}",
+        status.message()
+    );
+    server
+        .attributions_client()
+        .explain(small_request())
+        .await
+        .unwrap();
+    server.stop().await;
+}
+
+#[tokio::test]
+async fn hostile_sizes_get_precise_statuses_and_the_server_keeps_serving() {
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    server
+        .registry_client()
+        .register_model(wide_model())
+        .await
+        .unwrap();
+    let defaults = Config::default();
+    let mut attributions = server.attributions_client();
+    // 300 rows × 4096 draws: 1,228,800 model rows for one coalition value.
+    let dataset_rows = 300;
+    let cases: [(&str, String, proto::ExplainRequest); 5] = [
+        (
+            "budget_ms",
+            defaults.max_budget.as_millis().to_string(),
+            proto::ExplainRequest {
+                budget_ms: u32::MAX,
+                ..small_request()
+            },
+        ),
+        (
+            "max_evaluations",
+            defaults.max_evaluations.to_string(),
+            proto::ExplainRequest {
+                max_evaluations: u64::MAX,
+                ..small_request()
+            },
+        ),
+        (
+            "draws",
+            defaults.max_draws.to_string(),
+            proto::ExplainRequest {
+                removal: proto::Removal::Independent as i32,
+                draws: u32::MAX,
+                ..small_request()
+            },
+        ),
+        (
+            "dataset",
+            defaults.max_coalition_rows.to_string(),
+            proto::ExplainRequest {
+                removal: proto::Removal::Independent as i32,
+                draws: defaults.max_draws,
+                target: proto::Target::DatasetLoss as i32,
+                dataset: Some(proto::Matrix {
+                    rows: dataset_rows as u32,
+                    cols: PLAYERS as u32,
+                    values: vec![0.25; dataset_rows * PLAYERS],
+                }),
+                dataset_labels: vec![1.0; dataset_rows],
+                ..small_request()
+            },
+        ),
+        // Within the server's cap, but more than 2^22 coalitions for EXACT
+        // over 22 players allows.
+        (
+            "max_evaluations",
+            (1u64 << 21).to_string(),
+            proto::ExplainRequest {
+                max_evaluations: 1 << 21,
+                ..exact_request(1000)
+            },
+        ),
+    ];
+    for (field, maximum, request) in cases {
+        let status = attributions.explain(request).await.unwrap_err();
+        assert_eq!(status.code(), Code::InvalidArgument, "{field}: {status:?}");
+        assert!(
+            status.message().starts_with(&format!("{field}:")),
+            "{}",
+            status.message()
+        );
+        assert!(status.message().contains(&maximum), "{}", status.message());
+        attributions.explain(small_request()).await.unwrap();
+    }
+    server.stop().await;
+}
