@@ -207,6 +207,7 @@ fn spec(model: &TreeEnsemble, background: &Array2<f64>) -> ModelSpec {
         },
         description: String::new(),
         imported: None,
+        decision: None,
     }
 }
 

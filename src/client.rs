@@ -95,6 +95,53 @@ pub struct ModelFile {
     pub model: ModelEntry,
     #[serde(default)]
     pub background: Option<Vec<Vec<Option<f64>>>>,
+    /// `{ "favourable": "higher" | "lower", "space": "output" |
+    /// "probability", "threshold": 0.2 }`, every member optional.
+    #[serde(default)]
+    pub decision: Option<DecisionEntry>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DecisionEntry {
+    #[serde(default)]
+    pub favourable: Option<String>,
+    #[serde(default)]
+    pub space: Option<String>,
+    #[serde(default)]
+    pub threshold: Option<f64>,
+}
+
+impl DecisionEntry {
+    fn to_proto(&self) -> Result<proto::Decision, Failure> {
+        let favourable = match self.favourable.as_deref() {
+            None => proto::Favourable::Unspecified,
+            Some("higher") => proto::Favourable::Higher,
+            Some("lower") => proto::Favourable::Lower,
+            Some(other) => {
+                return Err(format!(
+                    "decision.favourable: unknown direction {other:?}; use higher or lower"
+                )
+                .into());
+            }
+        };
+        let space = match self.space.as_deref() {
+            None => proto::DecisionSpace::Unspecified,
+            Some("output") => proto::DecisionSpace::Output,
+            Some("probability") => proto::DecisionSpace::Probability,
+            Some(other) => {
+                return Err(format!(
+                    "decision.space: unknown space {other:?}; use output or probability"
+                )
+                .into());
+            }
+        };
+        Ok(proto::Decision {
+            favourable: favourable as i32,
+            space: space as i32,
+            threshold: self.threshold,
+        })
+    }
 }
 
 fn identity() -> String {
@@ -290,6 +337,11 @@ pub fn registration(
         onnx_output,
         onnx_output_column,
         class_index,
+        decision: file
+            .decision
+            .as_ref()
+            .map(DecisionEntry::to_proto)
+            .transpose()?,
     })
 }
 

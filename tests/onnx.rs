@@ -360,6 +360,7 @@ fn exported_scikit_learn_models_predict_as_onnxruntime_does() {
             },
             description: String::new(),
             imported: None,
+            decision: None,
         };
         let info = registry.register(spec).unwrap();
         let entry = registry.get(&info.model_id, info.version).unwrap();

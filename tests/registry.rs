@@ -61,6 +61,7 @@ fn linear_spec(model_id: &str, seed: u64) -> ModelSpec {
         background: random_background(&mut rng, 7, cols),
         description: format!("linear model {model_id}"),
         imported: None,
+        decision: None,
     }
 }
 
@@ -98,6 +99,7 @@ fn tree_spec(model_id: &str, seed: u64) -> ModelSpec {
         background: random_background(&mut rng, 9, 3),
         description: String::new(),
         imported: None,
+        decision: None,
     }
 }
 

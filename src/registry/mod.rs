@@ -41,7 +41,8 @@ mod store;
 mod validate;
 
 pub use spec::{
-    Background, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, ModelBody, ModelSpec, TreeBody,
+    Background, Decision, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, ModelBody, ModelSpec,
+    TreeBody,
 };
 pub use store::{
     FORMAT_VERSION, MAX_RECORD_FILE_BYTES, data_dir_from, default_data_dir, spec_checksum,
@@ -91,6 +92,8 @@ pub struct ModelInfo {
     pub imported: Option<ImportSpec>,
     /// The output an ONNX graph evaluated as it is reads (empty: its first).
     pub graph_output: Option<String>,
+    /// How the decision is taken; `None`: higher is favourable.
+    pub decision: Option<Decision>,
 }
 
 /// One registered version, ready to explain with. Shared as `Arc<Entry>`;
@@ -164,6 +167,7 @@ impl Entry {
             },
             description: self.info.description.clone(),
             imported: self.info.imported.clone(),
+            decision: self.info.decision,
         }
     }
 }

@@ -7,6 +7,7 @@ use serde::{Deserialize, Serialize};
 use super::store;
 use crate::engine::Link;
 pub use crate::model::TreeBody;
+pub use crate::reasons::Decision;
 
 /// One input feature as registered.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -149,4 +150,8 @@ pub struct ModelSpec {
     /// it existed read back as native.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub imported: Option<ImportSpec>,
+    /// How the model's decision is taken; absent (and then not written, so
+    /// earlier records keep their bytes): higher is favourable.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decision: Option<Decision>,
 }

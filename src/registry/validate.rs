@@ -8,11 +8,12 @@ use std::time::{Duration, Instant};
 
 use ndarray::{Array2, ArrayView2};
 
-use super::spec::{Background, FeatureSpec, ImportFormat, ModelBody, ModelSpec};
+use super::spec::{Background, Decision, FeatureSpec, ImportFormat, ModelBody, ModelSpec};
 use super::store::spec_checksum;
 use super::{Entry, ModelInfo, RegistryError, Result};
 use crate::engine::{EngineError, Players, PreparedModel};
 use crate::model::{LinearModel, Link, Model, TreeEnsemble};
+use crate::reasons::Space;
 
 /// Longest model id, in characters.
 pub const MAX_MODEL_ID_CHARS: usize = 128;
@@ -170,6 +171,9 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
         &f.reason_text
     })?;
     let link = Link::from(spec.link);
+    if let Some(decision) = &spec.decision {
+        check_decision(decision, link)?;
+    }
     let model = build_model(&spec.model, link, spec.features.len())?;
     check_background(&spec.background, &spec.features, model.accepts_missing())?;
     let checksum = match checksum {
@@ -187,6 +191,7 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
         background,
         description,
         imported,
+        decision,
         ..
     } = spec;
     let background_rows = background.rows;
@@ -210,6 +215,7 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
             description,
             imported,
             graph_output,
+            decision,
         },
         body,
         model,
@@ -218,6 +224,35 @@ pub(super) fn validate(spec: ModelSpec, checksum: Option<String>) -> Result<Vali
         reason_codes,
         reason_statements,
     })
+}
+
+/// A probability decision needs probabilities; a threshold needs a space
+/// to be read in and a finite value.
+fn check_decision(decision: &Decision, link: Link) -> Result<()> {
+    if decision.space == Some(Space::Probability) && link != Link::Logistic {
+        return Err(EngineError::new(
+            "decision.space",
+            "is DECISION_SPACE_PROBABILITY, but the model has the identity link; register it with LINK_LOGISTIC or take the decision on the output",
+        )
+        .into());
+    }
+    if let Some(threshold) = decision.threshold {
+        if decision.space.is_none() {
+            return Err(EngineError::new(
+                "decision.threshold",
+                "needs decision.space: say whether the threshold is on the output or the probability",
+            )
+            .into());
+        }
+        if !threshold.is_finite() {
+            return Err(EngineError::new(
+                "decision.threshold",
+                format!("must be finite; got {threshold}"),
+            )
+            .into());
+        }
+    }
+    Ok(())
 }
 
 /// The one non-empty value the features of each player give (members of a

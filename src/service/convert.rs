@@ -13,7 +13,7 @@ use crate::engine::job::{self, RemovalChoice, Request};
 use crate::engine::{EstimatorKind, Kernel, Players, Summary, Target};
 use crate::model::Link;
 use crate::model::import::{self, ImportedTrees};
-use crate::reasons;
+use crate::reasons::{self, Decision, Favourable, Outcome, Space};
 use crate::registry::{
     Background, Entry, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, MAX_BACKGROUND_BYTES,
     MAX_BACKGROUND_ROWS, MAX_ONNX_BYTES, ModelBody, ModelInfo, ModelSpec, RegistryError, TreeBody,
@@ -226,8 +226,33 @@ impl TryFrom<proto::RegisterModelRequest> for ModelSpec {
             },
             description: request.description,
             imported,
+            decision: request.decision.map(decision_from).transpose()?.flatten(),
         })
     }
+}
+
+/// The registered decision; all defaults (higher is favourable, no space,
+/// no threshold) is no decision, so such records keep their bytes.
+fn decision_from(decision: proto::Decision) -> Result<Option<Decision>> {
+    let favourable = match known::<proto::Favourable>("decision.favourable", decision.favourable)? {
+        proto::Favourable::Unspecified | proto::Favourable::Higher => Favourable::Higher,
+        proto::Favourable::Lower => Favourable::Lower,
+    };
+    let space = space_from("decision.space", decision.space)?;
+    let decision = Decision {
+        favourable,
+        space,
+        threshold: decision.threshold,
+    };
+    Ok((decision != Decision::default()).then_some(decision))
+}
+
+fn space_from(field: &str, space: i32) -> Result<Option<Space>> {
+    Ok(match known::<proto::DecisionSpace>(field, space)? {
+        proto::DecisionSpace::Unspecified => None,
+        proto::DecisionSpace::Output => Some(Space::Output),
+        proto::DecisionSpace::Probability => Some(Space::Probability),
+    })
 }
 
 /// An imported file as the native trees the registry stores (no new stored
@@ -388,6 +413,41 @@ fn take_names(features: &mut Vec<FeatureSpec>, names: Vec<String>, inputs: usize
     Ok(())
 }
 
+/// Players none of whose features carries a reason statement.
+fn unstated_players(features: &[FeatureSpec]) -> Vec<String> {
+    let names: Vec<String> = features.iter().map(|f| f.name.clone()).collect();
+    let groups: Vec<String> = features.iter().map(|f| f.group.clone()).collect();
+    let Ok(players) = Players::try_new(&names, &groups) else {
+        return Vec::new();
+    };
+    (0..players.len())
+        .filter(|&p| {
+            players
+                .members(p)
+                .iter()
+                .all(|&f| features[f].reason_text.is_empty())
+        })
+        .map(|p| players.names()[p].clone())
+        .collect()
+}
+
+impl From<Decision> for proto::Decision {
+    fn from(decision: Decision) -> proto::Decision {
+        proto::Decision {
+            favourable: match decision.favourable {
+                Favourable::Higher => proto::Favourable::Higher,
+                Favourable::Lower => proto::Favourable::Lower,
+            } as i32,
+            space: match decision.space {
+                None => proto::DecisionSpace::Unspecified,
+                Some(Space::Output) => proto::DecisionSpace::Output,
+                Some(Space::Probability) => proto::DecisionSpace::Probability,
+            } as i32,
+            threshold: decision.threshold,
+        }
+    }
+}
+
 /// Player names of a feature list, in attribution order. Registered
 /// features always form valid players; anything else gives none.
 fn player_names(features: &[FeatureSpec]) -> Vec<String> {
@@ -429,6 +489,15 @@ impl From<&ModelInfo> for proto::ModelInfo {
                 Some(imported) => imported.output.clone(),
                 None => info.graph_output.clone().unwrap_or_default(),
             },
+            decision: Some(proto::Decision::from(info.decision.unwrap_or_default())),
+            warnings: unstated_players(&info.features)
+                .into_iter()
+                .map(|name| {
+                    format!(
+                        "player {name:?} has no reason statement, so it is never listed as a reason"
+                    )
+                })
+                .collect(),
         }
     }
 }
@@ -641,6 +710,15 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
             ),
         ));
     }
+    known::<proto::Favourable>("favourable", request.favourable)?;
+    space_from("decision_space", request.decision_space)?;
+    let level = request.reasons_level;
+    if !(level == 0.0 || (level > 0.0 && level < 1.0)) {
+        return Err(ServiceError::invalid(
+            "reasons_level",
+            format!("must be in (0, 1), or 0 for 0.95; got {level}"),
+        ));
+    }
     let mut engine = Request::new(request.instance.clone());
     engine.removal = removal_from(request)?;
     engine.target = target_from(request)?;
@@ -677,30 +755,25 @@ pub fn explanation(
             std_error: *std_error,
         })
         .collect();
-    let limit = if request.max_reasons == 0 {
-        reasons::DEFAULT_REASONS
-    } else {
-        request.max_reasons as usize
-    };
-    let reasons = reasons::principal_reasons(
-        &estimate.values,
-        &estimate.std_errors,
-        entry.reason_statements(),
-        limit,
-    )
-    .into_iter()
-    .map(|reason| proto::Reason {
-        name: names.get(reason.player).cloned().unwrap_or_default(),
-        reason_code: entry
-            .reason_codes()
-            .get(reason.player)
-            .cloned()
-            .unwrap_or_default(),
-        statement: reason.statement,
-        weight: reason.weight,
-        confident: reason.confident,
-    })
-    .collect();
+    let listed = listed_reasons(entry, request, estimate);
+    let reasons = listed
+        .reasons
+        .reasons
+        .iter()
+        .map(|reason| proto::Reason {
+            name: names.get(reason.players[0]).cloned().unwrap_or_default(),
+            reason_code: reason.code.clone(),
+            statement: reason.statement.clone(),
+            weight: reason.weight,
+            confident: reason.confident,
+            in_list_probability: reason.in_list_probability,
+            players: reason
+                .players
+                .iter()
+                .filter_map(|&p| names.get(p).cloned())
+                .collect(),
+        })
+        .collect();
     let (selected, selection_value) = match &estimate.selection {
         Some(selection) => (
             selection
@@ -733,6 +806,125 @@ pub fn explanation(
         selected,
         selection_value,
         budget_ms: u32::try_from(budget.as_millis()).unwrap_or(u32::MAX),
+        reasons_set_probability: listed.reasons.set_probability,
+        reasons_certain: listed.reasons.certain,
+        outcome: match listed.outcome {
+            Outcome::Unknown => proto::Outcome::Unknown,
+            Outcome::Favourable => proto::Outcome::Favourable,
+            Outcome::Adverse => proto::Outcome::Adverse,
+        } as i32,
+        reasons_note: listed.note,
+    }
+}
+
+/// The reasons of an answer, the outcome, and why there are none.
+struct Listed {
+    reasons: reasons::Reasons,
+    outcome: Outcome,
+    note: String,
+}
+
+/// Reasons in the decision's direction and space: for OUTPUT and
+/// PROBABILITY targets in the decision's space, the players that pushed the
+/// value toward the unfavourable side; for LOSS those that raised the loss;
+/// none for DATASET_LOSS (global importance decides nothing) or a target
+/// in another space than the decision's (the order of reasons can differ
+/// between margin and probability).
+fn listed_reasons(
+    entry: &Entry,
+    request: &proto::ExplainRequest,
+    estimate: &crate::engine::Estimate,
+) -> Listed {
+    let mut decision = entry.info().decision.unwrap_or_default();
+    // Validated with the request (see `explain_request`).
+    match proto::Favourable::try_from(request.favourable) {
+        Ok(proto::Favourable::Higher) => decision.favourable = Favourable::Higher,
+        Ok(proto::Favourable::Lower) => decision.favourable = Favourable::Lower,
+        _ => {}
+    }
+    if let Ok(Some(space)) = space_from("decision_space", request.decision_space) {
+        decision.space = Some(space);
+    }
+    let none = |note: String| Listed {
+        reasons: reasons::Reasons {
+            reasons: Vec::new(),
+            set_probability: 1.0,
+            certain: true,
+        },
+        outcome: Outcome::Unknown,
+        note,
+    };
+    let target = proto::Target::try_from(request.target).unwrap_or(proto::Target::Output);
+    let (sign, space) = match target {
+        proto::Target::DatasetLoss => {
+            return none(
+                "TARGET_DATASET_LOSS measures global importance; it lists no reasons".into(),
+            );
+        }
+        proto::Target::Loss => (1.0, None),
+        proto::Target::Output | proto::Target::Probability => {
+            let space = if target == proto::Target::Output {
+                Space::Output
+            } else {
+                Space::Probability
+            };
+            if decision.space.is_some_and(|s| s != space) {
+                return none(format!(
+                    "the decision is taken on the {}; ask for {} to list reasons",
+                    if space == Space::Output {
+                        "probability"
+                    } else {
+                        "output"
+                    },
+                    if space == Space::Output {
+                        "TARGET_PROBABILITY"
+                    } else {
+                        "TARGET_OUTPUT"
+                    },
+                ));
+            }
+            let sign = match decision.favourable {
+                Favourable::Higher => -1.0,
+                Favourable::Lower => 1.0,
+            };
+            (sign, Some(space))
+        }
+    };
+    let limit = if request.max_reasons == 0 {
+        reasons::DEFAULT_REASONS
+    } else {
+        request.max_reasons as usize
+    };
+    let level = if request.reasons_level == 0.0 {
+        reasons::DEFAULT_LEVEL
+    } else {
+        request.reasons_level
+    };
+    let listed = reasons::principal_reasons(
+        &reasons::Attributions {
+            values: &estimate.values,
+            std_errors: &estimate.std_errors,
+            codes: entry.reason_codes(),
+            statements: entry.reason_statements(),
+        },
+        sign,
+        limit,
+        level,
+        request.seed,
+    );
+    let outcome = match (space, decision.space) {
+        (Some(space), Some(decided)) if space == decided => decision.outcome(estimate.value_full),
+        _ => Outcome::Unknown,
+    };
+    let note = if listed.reasons.is_empty() {
+        "no player with a reason statement pushed the value toward the unfavourable side".into()
+    } else {
+        String::new()
+    };
+    Listed {
+        reasons: listed,
+        outcome,
+        note,
     }
 }
 
