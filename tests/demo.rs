@@ -27,13 +27,20 @@ fn the_demo_explains_every_applicant_over_grpc() {
     // The tree model's 8 players usually fit exact enumeration within the
     // demo's budget, but that depends on the measured row cost, so either
     // answer is accepted; the logistic model always takes the closed form;
-    // referred applicants get reasons.
+    // referred applicants get reasons under both the reliability score and
+    // the risk score.
     let tree_lines = stdout
         .lines()
         .filter(|line| line.trim_start().starts_with("ESTIMATOR_") && line.contains("coalitions"))
         .count();
     assert_eq!(tree_lines, 4, "one estimator line per applicant: {stdout}");
     assert!(stdout.contains("ESTIMATOR_LINEAR_EXACT"), "{stdout}");
-    assert!(stdout.contains("principal reasons"), "{stdout}");
+    // Both kinds of score, reasons with their confidence, never a notice.
+    assert!(
+        stdout.contains("for compliance review, not a notice"),
+        "{stdout}"
+    );
+    assert!(stdout.contains("in the list with probability"), "{stdout}");
+    assert!(stdout.contains("Late-rent risk"), "{stdout}");
     assert!(stdout.contains("Caution"), "{stdout}");
 }

@@ -14,6 +14,9 @@ use crate::service::proto::{
 /// Model ids the demo registers.
 pub const TREES_ID: &str = "larchmont-screening-trees";
 pub const LOGISTIC_ID: &str = "larchmont-screening-logistic";
+/// The logistic model's complement: the probability of late rent, a risk
+/// score where higher is adverse.
+pub const RISK_ID: &str = "larchmont-late-rent-risk";
 
 type Failure = Box<dyn std::error::Error + Send + Sync>;
 
@@ -46,12 +49,40 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
             link: proto::Link::Logistic as i32,
             // Trees take missing values, so "no rental history" stays missing.
             background: Some(matrix(scenario.background.view())),
+            // A reliability score: higher is favourable, approved at the
+            // threshold.
+            decision: Some(proto::Decision {
+                favourable: proto::Favourable::Higher as i32,
+                space: proto::DecisionSpace::Probability as i32,
+                threshold: Some(scenario.approval_threshold),
+            }),
             description: "Demo: boosted trees on synthetic applicants (fictional co-operative)"
                 .into(),
             ..Default::default()
         })
         .await?
         .into_inner();
+    // σ(−m) = 1 − σ(m): the negated logistic model is the probability of
+    // the other outcome, here late rent.
+    let mut risk_model = linear_message(&scenario.logistic);
+    risk_model.weights.iter_mut().for_each(|w| *w = -*w);
+    risk_model.intercept = -risk_model.intercept;
+    registry
+        .register_model(proto::RegisterModelRequest {
+            model_id: RISK_ID.into(),
+            features: features.clone(),
+            model: Some(ModelBody::Linear(risk_model)),
+            link: proto::Link::Logistic as i32,
+            background: Some(matrix(scenario.linear_background.view())),
+            description: "Demo: probability of late rent (fictional co-operative)".into(),
+            decision: Some(proto::Decision {
+                favourable: proto::Favourable::Lower as i32,
+                space: proto::DecisionSpace::Probability as i32,
+                threshold: Some(1.0 - scenario.approval_threshold),
+            }),
+            ..Default::default()
+        })
+        .await?;
     let linear = registry
         .register_model(proto::RegisterModelRequest {
             model_id: LOGISTIC_ID.into(),
@@ -124,15 +155,73 @@ pub async fn run(endpoint: &str, scenario: &Scenario, seed: u64) -> Result<(), F
             e.elapsed_us
         );
     }
+
+    println!();
+    println!(
+        "Late-rent risk (the logistic model's complement; higher is adverse, referred above {:.2}), in probability:",
+        1.0 - scenario.approval_threshold
+    );
+    for row in 0..scenario.applicant_notes.len() {
+        let e = attributions
+            .explain(proto::ExplainRequest {
+                model_id: RISK_ID.into(),
+                instance: scenario.linear_applicants.row(row).to_vec(),
+                target: proto::Target::Probability as i32,
+                budget_ms: DEMO_BUDGET_MS,
+                seed,
+                ..Default::default()
+            })
+            .await?
+            .into_inner();
+        println!(
+            "  applicant {}: risk {:.3} → {} [{}]",
+            row + 1,
+            e.value_full,
+            outcome_words(e.outcome),
+            estimator_name(e.estimator_used)
+        );
+        print_reasons(&e, "    ");
+    }
     Ok(())
 }
 
+fn outcome_words(outcome: i32) -> &'static str {
+    match proto::Outcome::try_from(outcome) {
+        Ok(proto::Outcome::Favourable) => "approve",
+        Ok(proto::Outcome::Adverse) => "refer for review",
+        _ => "no threshold",
+    }
+}
+
+/// The reasons with their confidence, for a reviewer: never worded as a
+/// notice.
+fn print_reasons(e: &proto::Explanation, indent: &str) {
+    if e.reasons.is_empty() {
+        return;
+    }
+    println!(
+        "{indent}factors that pushed toward referral (for compliance review, not a notice): list {} at {:.0}%",
+        if e.reasons_certain {
+            "settled"
+        } else {
+            "NOT settled"
+        },
+        100.0 * e.reasons_set_probability
+    );
+    for (k, reason) in e.reasons.iter().enumerate() {
+        println!(
+            "{indent}  {}. [{}] {} ({:.3}; in the list with probability {:.2})",
+            k + 1,
+            reason.reason_code,
+            reason.statement,
+            reason.weight,
+            reason.in_list_probability
+        );
+    }
+}
+
 fn print_applicant(row: usize, note: &str, scenario: &Scenario, e: &proto::Explanation) {
-    let decision = if e.value_full >= scenario.approval_threshold {
-        "approve"
-    } else {
-        "refer for review"
-    };
+    let decision = outcome_words(e.outcome);
     println!();
     println!(
         "Applicant {} ({note}): score {:.3} → {decision}; background average {:.3}",
@@ -171,17 +260,8 @@ fn print_applicant(row: usize, note: &str, scenario: &Scenario, e: &proto::Expla
         e.elapsed_us as f64 / 1e3,
         e.efficiency_gap
     );
-    if e.value_full < scenario.approval_threshold && !e.reasons.is_empty() {
-        println!("  principal reasons (for review before any notice):");
-        for (k, reason) in e.reasons.iter().enumerate() {
-            println!(
-                "    {}. [{}] {} ({:.3})",
-                k + 1,
-                reason.reason_code,
-                reason.statement,
-                reason.weight
-            );
-        }
+    if e.outcome == proto::Outcome::Adverse as i32 {
+        print_reasons(e, "  ");
     }
 }
 
