@@ -1,0 +1,244 @@
+"""A typed client for the apportion attribution service.
+
+    from apportion_client import Client
+
+    client = Client("127.0.0.1:50051")
+    client.register_file("screening.json")            # the CLI's model file format
+    answer = client.explain("screening", [3100.0, 0.31, 2.0], target="probability")
+    for a in answer.attributions:
+        print(a.name, a.value, a.std_error)
+    frame = client.explain_frame("screening", applicants)   # pandas in, pandas out
+
+Results are plain dataclasses; options take the API's enum names in lower
+case (``removal="conditional_gaussian"``, ``target="probability"``,
+``estimator="auto"``). Errors are ``grpc.RpcError`` with the server's status,
+whose message names the field at fault.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import pathlib
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Sequence
+
+import grpc
+
+from .v1 import apportion_pb2 as pb
+from .v1 import apportion_pb2_grpc as rpc
+
+__all__ = ["Attribution", "Client", "Explanation", "ModelInfo", "Reason"]
+
+
+@dataclass(frozen=True)
+class ModelInfo:
+    model_id: str
+    version: int
+    model_kind: str
+    features: list[str]
+    players: list[str]
+    link: str
+    background_rows: int
+    checksum: str
+    import_format: str = ""
+    import_objective: str = ""
+    warnings: list[str] = field(default_factory=list)
+
+    @staticmethod
+    def from_message(m: Any) -> "ModelInfo":
+        return ModelInfo(
+            model_id=m.model_id,
+            version=m.version,
+            model_kind=m.model_kind,
+            features=[f.name for f in m.features],
+            players=list(m.players),
+            link=pb.Link.Name(m.link).removeprefix("LINK_").lower(),
+            background_rows=m.background_rows,
+            checksum=m.checksum,
+            import_format=m.import_format,
+            import_objective=m.import_objective,
+            warnings=list(m.warnings),
+        )
+
+
+@dataclass(frozen=True)
+class Attribution:
+    name: str
+    value: float
+    std_error: float
+
+
+@dataclass(frozen=True)
+class Reason:
+    name: str
+    reason_code: str
+    statement: str
+    weight: float
+    in_list_probability: float
+
+
+@dataclass(frozen=True)
+class Explanation:
+    model_id: str
+    version: int
+    request_id: str
+    value_full: float
+    value_empty: float
+    attributions: list[Attribution]
+    estimator: str
+    plan_reason: str
+    converged: bool
+    coalitions_evaluated: int
+    reasons: list[Reason]
+    reasons_certain: bool
+
+    @staticmethod
+    def from_message(m: Any) -> "Explanation":
+        return Explanation(
+            model_id=m.model_id,
+            version=m.version,
+            request_id=m.request_id,
+            value_full=m.value_full,
+            value_empty=m.value_empty,
+            attributions=[Attribution(a.name, a.value, a.std_error) for a in m.attributions],
+            estimator=pb.Estimator.Name(m.estimator_used).removeprefix("ESTIMATOR_").lower(),
+            plan_reason=m.plan_reason,
+            converged=m.converged,
+            coalitions_evaluated=m.coalitions_evaluated,
+            reasons=[Reason(r.name, r.reason_code, r.statement, r.weight, r.in_list_probability)
+                     for r in m.reasons],
+            reasons_certain=m.reasons_certain,
+        )
+
+    def values(self) -> dict[str, float]:
+        """Attribution per player, in player order."""
+        return {a.name: a.value for a in self.attributions}
+
+
+def _enum(enum: Any, prefix: str, name: str | None) -> int:
+    if name is None:
+        return 0
+    try:
+        return enum.Value(f"{prefix}_{name.upper()}")
+    except ValueError:
+        known = [n.removeprefix(prefix + "_").lower() for n in enum.keys()]
+        raise ValueError(f"{prefix.lower()}: unknown value {name!r}; use one of {known}") from None
+
+
+def _explain_request(model_id: str, row: Sequence[float], options: dict[str, Any]) -> Any:
+    """An ExplainRequest from a row and keyword options named as the API
+    names its fields; enums by their lower-case names."""
+    options = dict(options)
+    request = pb.ExplainRequest(
+        model_id=model_id,
+        instance=[math.nan if v is None else float(v) for v in row],
+        removal=_enum(pb.Removal, "REMOVAL", options.pop("removal", None)),
+        target=_enum(pb.Target, "TARGET", options.pop("target", None)),
+        summary=_enum(pb.Summary, "SUMMARY", options.pop("summary", None)),
+        estimator=_enum(pb.Estimator, "ESTIMATOR", options.pop("estimator", None)),
+    )
+    for name, value in options.items():
+        if name == "fixed_values":
+            request.fixed_values.extend(float(v) for v in value)
+        elif name in pb.ExplainRequest.DESCRIPTOR.fields_by_name:
+            setattr(request, name, value)
+        else:
+            raise TypeError(f"unknown option {name!r}")
+    return request
+
+
+def _background(rows: Iterable[Sequence[float | None]]) -> Any:
+    rows = [[math.nan if v is None else float(v) for v in row] for row in rows]
+    cols = len(rows[0]) if rows else 0
+    if any(len(row) != cols for row in rows):
+        raise ValueError("background: every row needs the same number of values")
+    return pb.Matrix(rows=len(rows), cols=cols, values=[v for row in rows for v in row])
+
+
+class Client:
+    """One channel to a server; every call takes the client's timeout."""
+
+    def __init__(self, address: str = "127.0.0.1:50051", timeout: float = 10.0,
+                 channel: grpc.Channel | None = None):
+        self.channel = channel or grpc.insecure_channel(address)
+        self.timeout = timeout
+        self.registry = rpc.RegistryStub(self.channel)
+        self.attributions = rpc.AttributionsStub(self.channel)
+
+    def close(self) -> None:
+        self.channel.close()
+
+    def __enter__(self) -> "Client":
+        return self
+
+    def __exit__(self, *_: Any) -> None:
+        self.close()
+
+    def register_file(self, path: str | pathlib.Path, model_id: str | None = None,
+                      background: Iterable[Sequence[float | None]] | None = None) -> ModelInfo:
+        """Registers a model file in the format `apportion register` reads
+        (README, "Scripts and operators"): JSON with model_id, features,
+        link, model and background; paths inside it are taken from the
+        file's folder."""
+        path = pathlib.Path(path)
+        spec = json.loads(path.read_text())
+        features = [pb.Feature(name=f["name"], group=f.get("group", ""), reason_code=f.get("reason_code", ""),
+                               reason_text=f.get("reason_text", "")) for f in spec.get("features", [])]
+        request = pb.RegisterModelRequest(
+            model_id=model_id or spec.get("model_id", ""),
+            features=features,
+            link=_enum(pb.Link, "LINK", spec.get("link", "identity")),
+            description=spec.get("description", ""),
+            background=_background(background if background is not None else spec.get("background", [])),
+        )
+        model = spec["model"]
+        kind = model.get("kind")
+        beside = lambda name: (path.parent / model[name]).read_bytes()  # noqa: E731
+        if kind == "linear":
+            request.linear.CopyFrom(pb.LinearModel(weights=model["weights"], intercept=model.get("intercept", 0.0)))
+        elif kind == "trees":
+            request.trees.CopyFrom(pb.TreeEnsemble(
+                trees=[pb.Tree(**tree) for tree in model["trees"]], base_score=model.get("base_score", 0.0)))
+        elif kind == "onnx":
+            request.onnx = beside("path")
+            request.onnx_output = model.get("output", "")
+            request.onnx_output_column = model.get("column", 0)
+        elif kind == "xgboost":
+            request.xgboost_json = beside("path")
+        elif kind == "lightgbm":
+            request.lightgbm_text = beside("path")
+        else:
+            raise ValueError(f"model.kind: unknown kind {kind!r}; use linear, trees, onnx, xgboost or lightgbm")
+        if model.get("class_index") is not None:
+            request.class_index = model["class_index"]
+        return ModelInfo.from_message(self.registry.RegisterModel(request, timeout=self.timeout))
+
+    def models(self) -> list[ModelInfo]:
+        answer = self.registry.ListModels(pb.ListModelsRequest(), timeout=self.timeout)
+        return [ModelInfo.from_message(m) for m in answer.models]
+
+    def explain(self, model_id: str, row: Sequence[float | None], **options: Any) -> Explanation:
+        """One row; options as ExplainRequest names them (budget_ms,
+        max_evaluations, tolerance, seed, label, fixed_values, max_reasons,
+        …)."""
+        request = _explain_request(model_id, row, options)
+        return Explanation.from_message(self.attributions.Explain(request, timeout=self.timeout))
+
+    def explain_rows(self, model_id: str, rows: Iterable[Sequence[float | None]], **options: Any) -> list[Explanation]:
+        """Several rows of one model under one set of options, in order."""
+        return [self.explain(model_id, row, **options) for row in rows]
+
+    def explain_frame(self, model_id: str, frame: Any, **options: Any) -> Any:
+        """A pandas DataFrame of rows (columns in the model's feature order)
+        → a DataFrame with one column per player, indexed like `frame`, and
+        the columns value_full, value_empty and estimator."""
+        import pandas
+
+        answers = self.explain_rows(model_id, frame.itertuples(index=False, name=None), **options)
+        records = []
+        for answer in answers:
+            record = answer.values()
+            record.update(value_full=answer.value_full, value_empty=answer.value_empty, estimator=answer.estimator)
+            records.append(record)
+        return pandas.DataFrame.from_records(records, index=frame.index)

@@ -1,0 +1,72 @@
+"""The client package against a real server (started by .ci/grpcio-check;
+its address in APPORTION_ADDRESS). Reference values are the linear closed
+form, phi_i = w_i (x_i - mean_bg x_i) ("A unified approach to interpreting
+model predictions", NeurIPS 2017), computed here."""
+
+import json
+import math
+import os
+
+import grpc
+import pandas
+import pytest
+
+from apportion_client import Client
+
+WEIGHTS = [0.8, -1.1, 0.5]
+BACKGROUND = [[1.0, 2.0, 0.0], [3.0, 0.0, 4.0], [2.0, 1.0, 2.0]]
+
+
+@pytest.fixture(scope="module")
+def client(tmp_path_factory):
+    address = os.environ["APPORTION_ADDRESS"]
+    with Client(address) as client:
+        folder = tmp_path_factory.mktemp("model")
+        spec = {
+            "model_id": "py-package-linear",
+            "features": [{"name": "income", "reason_text": "Income is low"}, {"name": "debt"}, {"name": "tenure"}],
+            "model": {"kind": "linear", "weights": WEIGHTS, "intercept": 0.1},
+            "background": BACKGROUND,
+        }
+        (folder / "model.json").write_text(json.dumps(spec))
+        client.info = client.register_file(folder / "model.json")
+        yield client
+
+
+def closed_form(row):
+    means = [sum(column) / len(column) for column in zip(*BACKGROUND)]
+    return [w * (x - m) for w, x, m in zip(WEIGHTS, row, means)]
+
+
+def test_register_file_reports_the_model(client):
+    assert client.info.model_kind == "linear"
+    assert client.info.players == ["income", "debt", "tenure"]
+    assert any("debt" in w for w in client.info.warnings), "players without a statement are reported"
+    assert any(m.model_id == "py-package-linear" for m in client.models())
+
+
+def test_explain_one_row_equals_the_closed_form(client):
+    row = [4.0, 1.0, 3.0]
+    answer = client.explain("py-package-linear", row)
+    assert answer.estimator == "linear_exact"
+    for got, expected in zip(answer.values().values(), closed_form(row)):
+        assert math.isclose(got, expected, rel_tol=1e-12, abs_tol=1e-12)
+    assert [r.name for r in answer.reasons] == ["income"] or not answer.reasons
+
+
+def test_a_data_frame_in_and_out(client):
+    frame = pandas.DataFrame([[4.0, 1.0, 3.0], [0.0, 2.0, 1.0]], columns=["income", "debt", "tenure"], index=["a", "b"])
+    answers = client.explain_frame("py-package-linear", frame)
+    assert list(answers.index) == ["a", "b"]
+    for key, row in zip(["a", "b"], frame.itertuples(index=False, name=None)):
+        expected = closed_form(row)
+        assert [answers.loc[key, p] for p in ["income", "debt", "tenure"]] == pytest.approx(expected, abs=1e-12)
+
+
+def test_bad_input_is_the_server_status_naming_the_field(client):
+    with pytest.raises(grpc.RpcError) as error:
+        client.explain("py-package-linear", [1.0, 2.0])
+    assert error.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert error.value.details().startswith("instance")
+    with pytest.raises(ValueError, match="target"):
+        client.explain("py-package-linear", [1.0, 2.0, 3.0], target="probabilty")
