@@ -61,6 +61,9 @@ enum Command {
     },
     /// Explain instances from a CSV or JSON-lines file; one JSON object per instance.
     Explain(ExplainArgs),
+    /// Read a bearer token from standard input and print its digest, as a
+    /// token file holds it (`DIGEST ROLE NAME` per line).
+    HashToken,
 }
 
 #[derive(clap::Args)]
@@ -143,6 +146,9 @@ struct ServeArgs {
     /// Most model rows one coalition value may cost (draws or background rows, times data set rows) [default: 1048576].
     #[arg(long, env = "APPORTION_MAX_COALITION_ROWS")]
     max_coalition_rows: Option<usize>,
+    /// File of bearer-token digests and roles (`apportion hash-token` makes a digest) [default: none: every call is accepted].
+    #[arg(long, env = "APPORTION_TOKENS_FILE")]
+    tokens_file: Option<PathBuf>,
 }
 
 impl ServeArgs {
@@ -166,6 +172,7 @@ impl ServeArgs {
             max_evaluations: self.max_evaluations,
             max_draws: self.max_draws,
             max_coalition_rows: self.max_coalition_rows,
+            tokens_file: self.tokens_file,
         };
         Ok(given.over(file).resolve()?)
     }
@@ -177,6 +184,7 @@ fn main() -> ExitCode {
         Command::Demo { seed, exit } => run_demo(seed, exit),
         Command::Serve(args) => serve(args),
         Command::Models { address } => run_client(client::models(&address)),
+        Command::HashToken => hash_token(),
         Command::Register {
             address,
             model,
@@ -365,4 +373,16 @@ fn run_demo(seed: u64, exit: bool) -> Result<(), Box<dyn std::error::Error>> {
     });
     let _ = std::fs::remove_dir_all(&data_dir);
     outcome
+}
+
+/// `hash-token`: the digest line of the token on standard input.
+fn hash_token() -> Result<(), Box<dyn std::error::Error>> {
+    let mut token = String::new();
+    std::io::stdin().read_line(&mut token)?;
+    let token = token.trim();
+    if token.is_empty() {
+        return Err("hash-token: give the token on standard input".into());
+    }
+    println!("{}", apportion::service::auth::digest_line(token));
+    Ok(())
 }

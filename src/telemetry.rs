@@ -8,6 +8,9 @@ use metrics_exporter_prometheus::{Matcher, PrometheusBuilder};
 
 /// Requests by `rpc` and gRPC status `code` (counter).
 pub const REQUESTS: &str = "apportion_requests_total";
+/// Calls refused for their token, by reason (missing, malformed, unknown,
+/// role); never the token itself.
+pub const AUTH_FAILURES: &str = "apportion_auth_failures_total";
 /// Time from arrival to answer of successful Explain calls (histogram).
 pub const EXPLAIN_SECONDS: &str = "apportion_explain_seconds";
 /// Coalition values computed by Explain calls (counter).

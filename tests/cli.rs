@@ -123,6 +123,10 @@ fn the_shipped_settings_file_is_valid() {
     assert_eq!(printed["max_evaluations"].as_integer(), Some(4194304));
     assert_eq!(printed["max_draws"].as_integer(), Some(4096));
     assert_eq!(printed["max_coalition_rows"].as_integer(), Some(1048576));
+    assert_eq!(
+        printed["tokens_file"].as_str(),
+        Some("/etc/apportion/tokens")
+    );
 }
 
 /// A server started from a config file, killed when dropped.

@@ -8,6 +8,7 @@ use std::time::Instant;
 
 use tonic::{Request, Response, Status};
 
+use super::auth::Access;
 use super::convert;
 use super::deadline::{effective_budget, grpc_timeout};
 use super::proto;
@@ -139,10 +140,13 @@ impl Attributions for AttributionsService {
         &self,
         request: Request<proto::ExplainRequest>,
     ) -> Result<Response<proto::Explanation>, Status> {
-        let result = AttributionsService::explain(self, request)
-            .await
-            .map(Response::new)
-            .map_err(Status::from);
+        let result = match self.shared.authorize(request.metadata(), Access::Explain) {
+            Ok(()) => AttributionsService::explain(self, request)
+                .await
+                .map(Response::new)
+                .map_err(Status::from),
+            Err(refused) => Err(refused),
+        };
         observe("Explain", &result);
         result
     }

@@ -51,6 +51,7 @@ pub struct ConfigLayer {
     pub max_evaluations: Option<u64>,
     pub max_draws: Option<u32>,
     pub max_coalition_rows: Option<usize>,
+    pub tokens_file: Option<PathBuf>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -68,7 +69,7 @@ pub enum ConfigError {
 }
 
 impl ConfigLayer {
-    /// Reads a TOML file. A relative `data_dir` in it is taken from the
+    /// Reads a TOML file. A relative `data_dir` or `tokens_file` in it is taken from the
     /// file's folder, so a file means the same from any working directory.
     pub fn read(path: &Path) -> Result<ConfigLayer, ConfigError> {
         let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
@@ -79,11 +80,13 @@ impl ConfigLayer {
             path: path.to_path_buf(),
             message: error.to_string().trim_end().to_string(),
         })?;
-        if let Some(dir) = &layer.data_dir
-            && dir.is_relative()
-        {
-            let folder = path.parent().unwrap_or(Path::new(""));
-            layer.data_dir = Some(folder.join(dir));
+        let folder = path.parent().unwrap_or(Path::new(""));
+        for relative in [&mut layer.data_dir, &mut layer.tokens_file] {
+            if let Some(dir) = relative.as_ref()
+                && dir.is_relative()
+            {
+                *relative = Some(folder.join(dir));
+            }
         }
         Ok(layer)
     }
@@ -103,6 +106,7 @@ impl ConfigLayer {
             max_evaluations: self.max_evaluations.or(lower.max_evaluations),
             max_draws: self.max_draws.or(lower.max_draws),
             max_coalition_rows: self.max_coalition_rows.or(lower.max_coalition_rows),
+            tokens_file: self.tokens_file.or(lower.tokens_file),
         }
     }
 
@@ -181,6 +185,7 @@ impl ConfigLayer {
             max_coalition_rows: self
                 .max_coalition_rows
                 .unwrap_or(defaults.max_coalition_rows),
+            tokens_file: self.tokens_file.or(defaults.tokens_file),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -216,6 +221,7 @@ impl Config {
             max_evaluations: Some(self.max_evaluations),
             max_draws: Some(self.max_draws),
             max_coalition_rows: Some(self.max_coalition_rows),
+            tokens_file: self.tokens_file.clone(),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }

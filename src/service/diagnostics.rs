@@ -1,14 +1,20 @@
 //! The Diagnostics service: `Echo`, the stack's baseline for throughput
 //! figures.
 
+use std::sync::Arc;
+
 use tonic::{Request, Response, Status};
 
+use super::auth::Access;
 use super::proto;
 use super::proto::diagnostics_server::Diagnostics;
-use super::server::observe;
+use super::server::{Shared, observe};
 
-#[derive(Debug, Clone, Default)]
-pub(super) struct DiagnosticsService;
+#[derive(Debug, Clone)]
+pub(super) struct DiagnosticsService {
+    /// For the tokens: Echo needs a token, like any call of the API.
+    pub(super) shared: Arc<Shared>,
+}
 
 #[tonic::async_trait]
 impl Diagnostics for DiagnosticsService {
@@ -16,9 +22,14 @@ impl Diagnostics for DiagnosticsService {
         &self,
         request: Request<proto::EchoRequest>,
     ) -> Result<Response<proto::EchoResponse>, Status> {
-        let result = Ok(Response::new(proto::EchoResponse {
-            payload: request.into_inner().payload,
-        }));
+        let result = self
+            .shared
+            .authorize(request.metadata(), Access::Read)
+            .map(|()| {
+                Response::new(proto::EchoResponse {
+                    payload: request.into_inner().payload,
+                })
+            });
         observe("Echo", &result);
         result
     }

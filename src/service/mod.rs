@@ -6,6 +6,7 @@
 //! Protobuf types stop here; nothing below this module knows about them.
 
 mod attributions;
+pub mod auth;
 pub mod config;
 pub mod convert;
 pub mod deadline;

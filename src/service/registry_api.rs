@@ -6,6 +6,7 @@ use std::sync::Arc;
 
 use tonic::{Request, Response, Status};
 
+use super::auth::Access;
 use super::proto;
 use super::proto::registry_server::Registry as RegistryApi;
 use super::server::{Shared, observe};
@@ -69,11 +70,14 @@ impl RegistryApi for RegistryService {
         &self,
         request: Request<proto::RegisterModelRequest>,
     ) -> Result<Response<proto::ModelInfo>, Status> {
-        let result = self
-            .register(request.into_inner())
-            .await
-            .map(Response::new)
-            .map_err(Status::from);
+        let result = match self.shared.authorize(request.metadata(), Access::Write) {
+            Ok(()) => self
+                .register(request.into_inner())
+                .await
+                .map(Response::new)
+                .map_err(Status::from),
+            Err(refused) => Err(refused),
+        };
         observe("RegisterModel", &result);
         result
     }
@@ -82,29 +86,38 @@ impl RegistryApi for RegistryService {
         &self,
         request: Request<proto::GetModelRequest>,
     ) -> Result<Response<proto::ModelInfo>, Status> {
-        let request = request.into_inner();
         let result = self
             .shared
-            .registry
-            .get(&request.model_id, request.version)
-            .map(|entry| Response::new(proto::ModelInfo::from(entry.info())))
-            .map_err(|e| Status::from(ServiceError::from(e)));
+            .authorize(request.metadata(), Access::Read)
+            .and_then(|()| {
+                let request = request.into_inner();
+                self.shared
+                    .registry
+                    .get(&request.model_id, request.version)
+                    .map(|entry| Response::new(proto::ModelInfo::from(entry.info())))
+                    .map_err(|e| Status::from(ServiceError::from(e)))
+            });
         observe("GetModel", &result);
         result
     }
 
     async fn list_models(
         &self,
-        _request: Request<proto::ListModelsRequest>,
+        request: Request<proto::ListModelsRequest>,
     ) -> Result<Response<proto::ListModelsResponse>, Status> {
-        let models = self
+        let result = self
             .shared
-            .registry
-            .list()
-            .iter()
-            .map(proto::ModelInfo::from)
-            .collect();
-        let result = Ok(Response::new(proto::ListModelsResponse { models }));
+            .authorize(request.metadata(), Access::Read)
+            .map(|()| {
+                let models = self
+                    .shared
+                    .registry
+                    .list()
+                    .iter()
+                    .map(proto::ModelInfo::from)
+                    .collect();
+                Response::new(proto::ListModelsResponse { models })
+            });
         observe("ListModels", &result);
         result
     }
@@ -113,11 +126,14 @@ impl RegistryApi for RegistryService {
         &self,
         request: Request<proto::DeleteModelRequest>,
     ) -> Result<Response<proto::DeleteModelResponse>, Status> {
-        let result = self
-            .delete(request.into_inner())
-            .await
-            .map(Response::new)
-            .map_err(Status::from);
+        let result = match self.shared.authorize(request.metadata(), Access::Write) {
+            Ok(()) => self
+                .delete(request.into_inner())
+                .await
+                .map(Response::new)
+                .map_err(Status::from),
+            Err(refused) => Err(refused),
+        };
         observe("DeleteModel", &result);
         result
     }

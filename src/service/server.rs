@@ -10,8 +10,10 @@ use std::time::Duration;
 
 use tokio::net::TcpListener;
 use tonic::Status;
+use tonic::metadata::MetadataMap;
 
 use super::attributions::AttributionsService;
+use super::auth::{Access, Tokens};
 use super::diagnostics::DiagnosticsService;
 use super::pool::ComputePool;
 use super::proto;
@@ -60,6 +62,8 @@ pub struct Config {
     /// Most model rows one coalition value may cost (draws or background
     /// rows, times DATASET_LOSS rows): they are filled as one block.
     pub max_coalition_rows: usize,
+    /// The token file (digests and roles); `None`: no authentication.
+    pub tokens_file: Option<PathBuf>,
 }
 
 impl Default for Config {
@@ -78,6 +82,7 @@ impl Default for Config {
             max_evaluations: 1 << 22,
             max_draws: crate::engine::job::MAX_DRAWS as u32,
             max_coalition_rows: crate::engine::job::DEFAULT_MAX_COALITION_ROWS,
+            tokens_file: None,
         }
     }
 }
@@ -91,6 +96,18 @@ pub(super) struct Shared {
     pub(super) deadline_margin: Duration,
     /// What one Explain call may ask for.
     pub(super) limits: Limits,
+    /// The bearer tokens calls must carry; `None`: calls are not checked.
+    pub(super) tokens: Option<Tokens>,
+}
+
+impl Shared {
+    /// Whether the call's token allows `access` (always, without tokens).
+    pub(super) fn authorize(&self, metadata: &MetadataMap, access: Access) -> Result<(), Status> {
+        match &self.tokens {
+            Some(tokens) => tokens.check(metadata, access),
+            None => Ok(()),
+        }
+    }
 }
 
 /// The server's maxima for the request fields that size an Explain call's
@@ -119,7 +136,20 @@ impl State {
             Some(dir) => Registry::open(dir)?,
             None => Registry::open_default()?,
         };
-        Ok((State::new(Arc::new(registry), config), problems))
+        let tokens = match &config.tokens_file {
+            Some(path) => Some(Tokens::load(path)?),
+            None => {
+                tracing::warn!(
+                    "no token file: every call is accepted; set tokens_file before exposing the port"
+                );
+                None
+            }
+        };
+        let mut state = State::new(Arc::new(registry), config);
+        Arc::get_mut(&mut state.shared)
+            .expect("the state is not shared yet")
+            .tokens = tokens;
+        Ok((state, problems))
     }
 
     pub fn new(registry: Arc<Registry>, config: &Config) -> State {
@@ -135,6 +165,7 @@ impl State {
                     draws: config.max_draws,
                     coalition_rows: config.max_coalition_rows,
                 },
+                tokens: None,
             }),
             max_message_bytes: config.max_message_bytes,
         }
@@ -182,9 +213,11 @@ pub async fn run(
     })
     .max_decoding_message_size(limit)
     .max_encoding_message_size(limit);
-    let diagnostics = DiagnosticsServer::new(DiagnosticsService)
-        .max_decoding_message_size(limit)
-        .max_encoding_message_size(limit);
+    let diagnostics = DiagnosticsServer::new(DiagnosticsService {
+        shared: shared.clone(),
+    })
+    .max_decoding_message_size(limit)
+    .max_encoding_message_size(limit);
 
     let (health_reporter, health) = tonic_health::server::health_reporter();
     health_reporter

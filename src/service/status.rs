@@ -38,6 +38,9 @@ pub enum ServiceError {
     Reflection(#[from] tonic_reflection::server::Error),
     #[error("{0}")]
     Telemetry(#[from] crate::telemetry::TelemetryError),
+    /// The token file cannot be used (at start only).
+    #[error("tokens_file: {0}")]
+    Tokens(#[from] super::auth::TokenFileError),
 }
 
 impl ServiceError {
@@ -71,7 +74,8 @@ impl ServiceError {
             ServiceError::Internal(_)
             | ServiceError::Transport(_)
             | ServiceError::Reflection(_)
-            | ServiceError::Telemetry(_) => ErrorKind::Internal,
+            | ServiceError::Telemetry(_)
+            | ServiceError::Tokens(_) => ErrorKind::Internal,
         }
     }
 }
