@@ -445,6 +445,7 @@ impl From<proto::Estimator> for Option<EstimatorKind> {
             proto::Estimator::Msr => Some(EstimatorKind::MaximumSampleReuse),
             proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
             proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
+            proto::Estimator::RowPermutation => Some(EstimatorKind::RowPermutation),
         }
     }
 }
@@ -459,6 +460,7 @@ impl From<EstimatorKind> for proto::Estimator {
             EstimatorKind::MaximumSampleReuse => proto::Estimator::Msr,
             EstimatorKind::TreeExact => proto::Estimator::TreeExact,
             EstimatorKind::LinearExact => proto::Estimator::LinearExact,
+            EstimatorKind::RowPermutation => proto::Estimator::RowPermutation,
         }
     }
 }
