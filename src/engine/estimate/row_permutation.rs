@@ -30,6 +30,13 @@ use crate::engine::players::Players;
 /// Antithetic pairs in the first round: the fewest that give a std error.
 pub const FIRST_PAIRS: u64 = 2;
 
+/// Fewest pairs whose std error may declare convergence: a handful of
+/// pairs can repeat a background row and agree exactly (an additive model's
+/// contributions do not depend on the permutation), and a sample variance
+/// of 0 from them says nothing (common practice, no source: about 30
+/// samples before trusting a sample variance).
+const PAIRS_TO_CONVERGE: u64 = 30;
+
 /// Model rows one antithetic pair costs for `players` players: its
 /// background row z alone (the empty coalition), then the `p - 1` proper
 /// prefixes of the permutation and of its reverse mixed with z; the full
@@ -209,7 +216,7 @@ pub fn shapley(input: &RowSampling<'_>, stopping: &Stopping, seed: u64) -> Resul
         } else {
             default_tolerance(value_empty, value_full)
         };
-        if std_errors.iter().all(|s| *s <= tolerance) {
+        if moments.count() >= PAIRS_TO_CONVERGE && std_errors.iter().all(|s| *s <= tolerance) {
             converged = true;
             break;
         }
