@@ -31,7 +31,11 @@ fn weights(features: usize) -> Vec<f64> {
 
 /// `model` over `background` with an injected row cost, so plans do not
 /// depend on this machine's speed.
-fn prepared(model: Arc<dyn Model>, background: &Array2<f64>, row_cost_ns: f64) -> Arc<PreparedModel> {
+fn prepared(
+    model: Arc<dyn Model>,
+    background: &Array2<f64>,
+    row_cost_ns: f64,
+) -> Arc<PreparedModel> {
     let players = Players::singletons(model.inputs());
     Arc::new(PreparedModel::try_new(model, players, background.clone(), row_cost_ns).unwrap())
 }
@@ -64,7 +68,11 @@ fn coverage(model: &Arc<PreparedModel>, exact: &[f64], make: impl Fn(u64) -> Req
         assert_eq!(answer.estimator, EstimatorKind::RowPermutation);
         let estimate = &answer.estimate;
         for ((value, se), truth) in estimate.values.iter().zip(&estimate.std_errors).zip(exact) {
-            assert!(se.is_finite() && *se > 0.0, "{se} in {estimate:?} ({} rows)", answer.model_rows_evaluated);
+            assert!(
+                se.is_finite() && *se > 0.0,
+                "{se} in {estimate:?} ({} rows)",
+                answer.model_rows_evaluated
+            );
             if (value - truth).abs() <= 1.96 * se {
                 covered += 1;
             }
@@ -112,7 +120,8 @@ fn row_sampling_covers_the_linear_closed_form() {
     let p = 5;
     let bg = background(40, p, 3);
     let w = weights(p);
-    let model: Arc<dyn Model> = Arc::new(LinearModel::try_new(w.clone(), 0.3, Link::Identity).unwrap());
+    let model: Arc<dyn Model> =
+        Arc::new(LinearModel::try_new(w.clone(), 0.3, Link::Identity).unwrap());
     let model = prepared(model, &bg, 50.0);
     let x = vec![1.5, -0.5, 0.25, 2.0, -1.75];
     let exact: Vec<f64> = (0..p)
@@ -132,7 +141,8 @@ fn row_sampling_covers_brute_force_probabilities() {
     let p = 4;
     let bg = background(30, p, 5);
     let w = weights(p);
-    let model: Arc<dyn Model> = Arc::new(LinearModel::try_new(w.clone(), -0.2, Link::Logistic).unwrap());
+    let model: Arc<dyn Model> =
+        Arc::new(LinearModel::try_new(w.clone(), -0.2, Link::Logistic).unwrap());
     let model = prepared(model, &bg, 50.0);
     let x = vec![1.0, -1.5, 0.5, 1.75];
     let g = |row: &[f64]| {
@@ -197,7 +207,8 @@ fn random_trees(count: usize, depth: u32, features: usize, seed: u64) -> Vec<Tre
 fn row_sampling_covers_the_exact_tree_algorithm() {
     let p = 6;
     let bg = background(50, p, 9);
-    let ensemble = TreeEnsemble::try_new(random_trees(8, 3, p, 11), 0.1, Link::Identity, p).unwrap();
+    let ensemble =
+        TreeEnsemble::try_new(random_trees(8, 3, p, 11), 0.1, Link::Identity, p).unwrap();
     let model = prepared(Arc::new(ensemble), &bg, 50.0);
     let x = vec![0.5, -1.0, 1.25, -0.25, 0.75, -1.5];
     let exact = explain(
@@ -224,7 +235,8 @@ fn error_shrinks_with_rows_and_seeded_runs_repeat() {
     let p = 5;
     let bg = background(40, p, 3);
     let w = weights(p);
-    let model: Arc<dyn Model> = Arc::new(LinearModel::try_new(w.clone(), 0.3, Link::Identity).unwrap());
+    let model: Arc<dyn Model> =
+        Arc::new(LinearModel::try_new(w.clone(), 0.3, Link::Identity).unwrap());
     let model = prepared(model, &bg, 50.0);
     let x = vec![1.5, -0.5, 0.25, 2.0, -1.75];
     let exact: Vec<f64> = (0..p)
@@ -238,7 +250,10 @@ fn error_shrinks_with_rows_and_seeded_runs_repeat() {
             let pairs = (rows - 1) / (2 * p as u64 - 1);
             assert_eq!(answer.model_rows_evaluated, 1 + pairs * (2 * p as u64 - 1));
             assert_eq!(answer.coalitions_evaluated, answer.model_rows_evaluated);
-            assert!(!answer.estimate.converged, "stopped at the cap, not the tolerance");
+            assert!(
+                !answer.estimate.converged,
+                "stopped at the cap, not the tolerance"
+            );
             let gap = answer.estimate.efficiency_gap();
             assert!(gap.abs() < 1e-12, "each pair is efficient: {gap}");
             total += answer
@@ -284,7 +299,8 @@ fn error_shrinks_with_rows_and_seeded_runs_repeat() {
 fn auto_degrades_to_row_sampling_where_it_used_to_refuse() {
     let p = 30;
     let bg = background(1000, p, 21);
-    let model: Arc<dyn Model> = Arc::new(LinearModel::try_new(weights(p), 0.1, Link::Logistic).unwrap());
+    let model: Arc<dyn Model> =
+        Arc::new(LinearModel::try_new(weights(p), 0.1, Link::Logistic).unwrap());
     let model = prepared(model, &bg, 10_000.0);
     let x = vec![0.5; p];
     let request = Request {
@@ -296,7 +312,11 @@ fn auto_degrades_to_row_sampling_where_it_used_to_refuse() {
     assert_eq!(job.estimator(), EstimatorKind::RowPermutation);
     assert!(job.predicted() <= Duration::from_millis(50));
     let answer = job.run(Instant::now() + Duration::from_secs(60)).unwrap();
-    assert!(answer.plan_reason.contains("jointly"), "{}", answer.plan_reason);
+    assert!(
+        answer.plan_reason.contains("jointly"),
+        "{}",
+        answer.plan_reason
+    );
     assert!(answer.estimate.std_errors.iter().all(|s| s.is_finite()));
     // 50 ms at 10 µs a row: at most 5,000 rows.
     assert!(answer.model_rows_evaluated <= 5_000);
@@ -398,8 +418,15 @@ async fn auto_answers_over_grpc_when_a_full_coalition_exceeds_the_budget() {
         .await
         .expect("AUTO degrades instead of refusing")
         .into_inner();
-    assert_eq!(answer.estimator_used, proto::Estimator::RowPermutation as i32);
-    assert!(answer.plan_reason.contains("jointly"), "{}", answer.plan_reason);
+    assert_eq!(
+        answer.estimator_used,
+        proto::Estimator::RowPermutation as i32
+    );
+    assert!(
+        answer.plan_reason.contains("jointly"),
+        "{}",
+        answer.plan_reason
+    );
     assert_eq!(answer.attributions.len(), p);
     assert!(answer.attributions.iter().all(|a| a.std_error.is_finite()));
     assert!(answer.model_rows_evaluated >= 119);

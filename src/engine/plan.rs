@@ -236,7 +236,11 @@ fn sampler_minimum(estimator: EstimatorKind, players: usize) -> u64 {
         EstimatorKind::MaximumSampleReuse => 34,
         _ => 2,
     };
-    if players < 64 { need.min(1 << players) } else { need }
+    if players < 64 {
+        need.min(1 << players)
+    } else {
+        need
+    }
 }
 
 fn milliseconds(time: Duration) -> f64 {
@@ -245,7 +249,12 @@ fn milliseconds(time: Duration) -> f64 {
 
 /// Refuses an explicitly requested estimator that cannot finish within the
 /// budget: asked for by name, it is not swapped for another.
-fn refuse_explicit(input: &PlanInput, estimator: EstimatorKind, predicted: Duration, what: &str) -> EngineError {
+fn refuse_explicit(
+    input: &PlanInput,
+    estimator: EstimatorKind,
+    predicted: Duration,
+    what: &str,
+) -> EngineError {
     EngineError::failed_precondition(
         "estimator",
         format!(
@@ -284,7 +293,12 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
         EstimatorKind::TreeExact | EstimatorKind::LinearExact => {
             let predicted = input.predicted(requested, 0);
             if predicted > input.budget {
-                return Err(refuse_explicit(input, requested, predicted, "one exact pass"));
+                return Err(refuse_explicit(
+                    input,
+                    requested,
+                    predicted,
+                    "one exact pass",
+                ));
             }
             Ok(Plan {
                 estimator: requested,
@@ -332,10 +346,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
             Ok(Plan {
                 estimator: requested,
                 max_evaluations: rows,
-                reason: format!(
-                    "{} as requested, up to {rows} model rows",
-                    requested.name()
-                ),
+                reason: format!("{} as requested, up to {rows} model rows", requested.name()),
                 predicted: input.predicted_rows(rows),
             })
         }
@@ -462,7 +473,9 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
     let needed = sampler_minimum(estimator, p);
     let sampled_cap = input.max_evaluations.min(affordable);
     if sampled_cap >= needed {
-        passed_over.push(format!("sampling with {method}, up to {sampled_cap} coalitions"));
+        passed_over.push(format!(
+            "sampling with {method}, up to {sampled_cap} coalitions"
+        ));
         return Ok(Plan {
             estimator,
             max_evaluations: sampled_cap,
@@ -622,7 +635,9 @@ mod tests {
                             (ModelShape::Trees, Some(5e6)),
                             (ModelShape::Linear, Some(row_cost_ns)),
                         ] {
-                            for summary in [Summary::Shapley, Summary::Banzhaf, Summary::LeaveOneOut] {
+                            for summary in
+                                [Summary::Shapley, Summary::Banzhaf, Summary::LeaveOneOut]
+                            {
                                 let case = PlanInput {
                                     players,
                                     rows_per_coalition: rows,
@@ -692,7 +707,11 @@ mod tests {
         trees.exact_cost_ns = Some(200e6);
         let chosen = plan(&trees).unwrap();
         assert_eq!(chosen.estimator, EstimatorKind::RowPermutation);
-        assert!(chosen.reason.contains("TREE_EXACT would take 200.000 ms"), "{}", chosen.reason);
+        assert!(
+            chosen.reason.contains("TREE_EXACT would take 200.000 ms"),
+            "{}",
+            chosen.reason
+        );
     }
 
     #[test]
@@ -711,7 +730,11 @@ mod tests {
             let error = plan(&trees).unwrap_err();
             assert_eq!(error.kind, ErrorKind::FailedPrecondition, "{estimator:?}");
             assert!(error.message.contains(predicted), "{}", error.message);
-            assert!(error.message.contains("100.000 ms budget"), "{}", error.message);
+            assert!(
+                error.message.contains("100.000 ms budget"),
+                "{}",
+                error.message
+            );
         }
         let mut exact = input(16);
         exact.requested = Some(EstimatorKind::Exact);
@@ -725,6 +748,9 @@ mod tests {
             EstimatorKind::RowPermutation
         );
         trees.budget = Duration::from_millis(1);
-        assert_eq!(plan(&trees).unwrap_err().kind, ErrorKind::FailedPrecondition);
+        assert_eq!(
+            plan(&trees).unwrap_err().kind,
+            ErrorKind::FailedPrecondition
+        );
     }
 }
