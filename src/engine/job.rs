@@ -168,6 +168,9 @@ enum Work {
         round_rows: u64,
         tolerance: f64,
     },
+    /// The tree algorithm's per-row pass over at most `max_rows` background
+    /// rows in random order, when the whole pass does not fit.
+    TreeRowSample { max_rows: u64, tolerance: f64 },
 }
 
 /// Rounds of a joint row sampler per budget: the deadline is checked
@@ -282,12 +285,22 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         exact_cost_ns: model.exact_cost_ns(matches!(removal, ValidRemoval::Fixed(_))),
         enumeration_cap: request.enumeration_cap,
         row_sampling: removal == ValidRemoval::Marginal
+            && instances == 1
             && matches!(request.target, Target::Output | Target::Probability),
+        tree_row_cost_ns: match shape {
+            ModelShape::Trees => model.exact_cost_ns(true),
+            _ => None,
+        },
+        background_rows,
     })?;
     let work = match chosen.estimator {
         EstimatorKind::TreeExact => Work::TreeExact,
         EstimatorKind::LinearExact => Work::LinearExact,
         EstimatorKind::Exact => Work::Enumerate {
+            tolerance: request.tolerance,
+        },
+        EstimatorKind::TreeRowSample => Work::TreeRowSample {
+            max_rows: chosen.max_evaluations,
             tolerance: request.tolerance,
         },
         EstimatorKind::RowPermutation => Work::RowSample {
@@ -409,6 +422,32 @@ impl Job {
                 };
                 let estimate = estimate::linear::explain(form, players, &self.instance, reference)?;
                 (estimate, Counts::default())
+            }
+            Work::TreeRowSample { max_rows, .. } => {
+                let Structure::Trees(ensemble) = model.structure() else {
+                    return Err(self.not_planned("a tree ensemble"));
+                };
+                let stopping = Stopping {
+                    max_evaluations: *max_rows,
+                    ..stopping
+                };
+                let (estimate, rows) = estimate::tree::explain_row_sample(
+                    ensemble,
+                    players,
+                    &self.instance,
+                    model.background(),
+                    self.summary,
+                    &stopping,
+                    self.seed,
+                )?;
+                // No coalition value is computed; the rows predicted are
+                // the instance and each background row walked.
+                let counts = Counts {
+                    coalitions: 0,
+                    model_rows: rows + 1,
+                    cache_hits: 0,
+                };
+                (estimate, counts)
             }
             Work::RowSample {
                 max_rows,
@@ -541,7 +580,8 @@ impl Job {
         match self.work {
             Work::Enumerate { tolerance }
             | Work::Sample { tolerance, .. }
-            | Work::RowSample { tolerance, .. } => tolerance,
+            | Work::RowSample { tolerance, .. }
+            | Work::TreeRowSample { tolerance, .. } => tolerance,
             Work::TreeExact | Work::LinearExact => 0.0,
         }
     }

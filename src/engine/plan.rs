@@ -53,6 +53,11 @@ pub struct PlanInput {
     /// where a coalition value is a mean over background rows of a per-row
     /// value.
     pub row_sampling: bool,
+    /// Predicted time of the tree algorithm's per-row pass for one
+    /// background row (tree models), in nanoseconds.
+    pub tree_row_cost_ns: Option<f64>,
+    /// Background rows the marginal game averages over.
+    pub background_rows: usize,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -81,6 +86,34 @@ impl PlanInput {
     /// Model rows the budget pays for at the measured row cost.
     fn affordable_rows(&self) -> u64 {
         (self.budget.as_nanos() as f64 / self.row_cost_ns.max(1.0)).floor() as u64
+    }
+
+    /// Predicted time of one background row of the subsampled tree pass:
+    /// the pass itself and the row's prediction.
+    fn tree_row_ns(&self) -> f64 {
+        (self.tree_row_cost_ns.unwrap_or(0.0) + self.row_cost_ns).max(1.0)
+    }
+
+    /// Background rows of the subsampled tree pass the budget pays for, at
+    /// most every row and the cap.
+    fn affordable_tree_rows(&self) -> u64 {
+        let affordable = (self.budget.as_nanos() as f64 / self.tree_row_ns()).floor() as u64;
+        affordable
+            .min(self.background_rows as u64)
+            .min(self.max_evaluations)
+    }
+
+    /// Predicted time of the subsampled tree pass over `rows` rows.
+    fn predicted_tree_rows(&self, rows: u64) -> Duration {
+        Duration::from_secs_f64(rows as f64 * self.tree_row_ns() / 1e9)
+    }
+
+    /// Whether the subsampled tree pass computes this request: where
+    /// TREE_EXACT would, under MARGINAL removal (FIXED has one row).
+    fn tree_row_sampling(&self) -> bool {
+        self.removal == RemovalKind::Marginal
+            && self.tree_row_cost_ns.is_some()
+            && matches!(self.model_specific(), Some((EstimatorKind::TreeExact, _)))
     }
 
     /// Predicted time of `rows` model rows.
@@ -173,6 +206,14 @@ impl PlanInput {
             }),
             EstimatorKind::MaximumSampleReuse => (self.summary != Summary::Banzhaf)
                 .then(|| format!("MSR estimates BANZHAF only, not {summary}")),
+            EstimatorKind::TreeRowSample => (!self.tree_row_sampling()).then(|| {
+                format!(
+                    "TREE_ROW_SAMPLE needs a tree ensemble under MARGINAL removal of the raw \
+                     output, for SHAPLEY or BANZHAF; this request asks for {summary} under {:?} \
+                     removal",
+                    self.removal
+                )
+            }),
             EstimatorKind::RowPermutation => {
                 if self.summary != Summary::Shapley {
                     Some(format!("ROW_PERMUTATION estimates SHAPLEY only, not {summary}"))
@@ -219,6 +260,10 @@ pub fn model_specific(
         _ => None,
     }
 }
+
+/// Fewest background rows of the subsampled tree pass: two give a std
+/// error.
+const TREE_ROWS_MINIMUM: u64 = 2;
 
 /// Fewest coalition evaluations `estimator` needs for `players` players
 /// (each sampler's first round, as it refuses below it; `2^p` always
@@ -335,6 +380,24 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                 predicted,
             })
         }
+        EstimatorKind::TreeRowSample => {
+            let predicted = input.predicted_tree_rows(TREE_ROWS_MINIMUM);
+            if predicted > input.budget {
+                let what = format!("its first {TREE_ROWS_MINIMUM} background rows");
+                return Err(refuse_explicit(input, requested, predicted, &what));
+            }
+            let rows = input.affordable_tree_rows();
+            Ok(Plan {
+                estimator: requested,
+                max_evaluations: rows,
+                reason: format!(
+                    "{} as requested, up to {rows} of {} background rows",
+                    requested.name(),
+                    input.background_rows
+                ),
+                predicted: input.predicted_tree_rows(rows),
+            })
+        }
         EstimatorKind::RowPermutation => {
             let needed = row_permutation::minimum_rows(p);
             let predicted = input.predicted_rows(needed);
@@ -393,6 +456,20 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
             estimator.name(),
             milliseconds(predicted)
         ));
+        let rows = input.affordable_tree_rows();
+        if input.tree_row_sampling() && rows >= TREE_ROWS_MINIMUM {
+            passed_over.push(format!(
+                "the tree algorithm's per-row pass over {rows} of {} background rows in random \
+                 order fits instead (exact in the coalitions, sampled in the rows)",
+                input.background_rows
+            ));
+            return Ok(Plan {
+                estimator: EstimatorKind::TreeRowSample,
+                max_evaluations: rows,
+                reason: passed_over.join("; "),
+                predicted: input.predicted_tree_rows(rows),
+            });
+        }
     }
 
     let affordable = input.affordable_evaluations();
@@ -569,6 +646,8 @@ mod tests {
             exact_cost_ns: None,
             enumeration_cap: DEFAULT_ENUMERATION_CAP,
             row_sampling: true,
+            tree_row_cost_ns: None,
+            background_rows: 100,
         }
     }
 
@@ -646,6 +725,9 @@ mod tests {
                                     budget: Duration::from_micros(budget_us),
                                     row_cost_ns,
                                     exact_cost_ns,
+                                    tree_row_cost_ns: (shape == ModelShape::Trees)
+                                        .then_some(row_cost_ns * 20.0),
+                                    background_rows: rows,
                                     ..input(players)
                                 };
                                 match plan(&case) {
@@ -712,6 +794,38 @@ mod tests {
             "{}",
             chosen.reason
         );
+    }
+
+    #[test]
+    fn trees_too_large_for_the_whole_pass_take_it_over_a_subset_of_rows() {
+        let mut trees = input(30);
+        trees.shape = ModelShape::Trees;
+        trees.rows_per_coalition = 1000;
+        trees.background_rows = 1000;
+        trees.row_cost_ns = 10_000.0;
+        trees.exact_cost_ns = Some(200e6);
+        trees.tree_row_cost_ns = Some(90_000.0);
+        let chosen = plan(&trees).unwrap();
+        assert_eq!(chosen.estimator, EstimatorKind::TreeRowSample);
+        // 100 ms at 90 + 10 µs a row: 1,000 rows would take 100 ms; the
+        // budget pays for 999 (floating point floors 999.99…), never more
+        // than the background holds.
+        assert!((999..=1000).contains(&chosen.max_evaluations), "{chosen:?}");
+        assert!(chosen.predicted <= trees.budget);
+        assert!(chosen.reason.contains("per-row pass"), "{}", chosen.reason);
+        // FIXED has one reference row: nothing to subsample.
+        trees.removal = RemovalKind::Fixed;
+        assert_ne!(
+            plan(&trees).unwrap().estimator,
+            EstimatorKind::TreeRowSample
+        );
+        trees.removal = RemovalKind::Marginal;
+        trees.requested = Some(EstimatorKind::TreeRowSample);
+        trees.budget = Duration::from_micros(150);
+        let error = plan(&trees).unwrap_err();
+        assert_eq!(error.kind, ErrorKind::FailedPrecondition);
+        // Two rows × 100 µs.
+        assert!(error.message.contains("0.200 ms"), "{}", error.message);
     }
 
     #[test]

@@ -446,6 +446,7 @@ impl From<proto::Estimator> for Option<EstimatorKind> {
             proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
             proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
             proto::Estimator::RowPermutation => Some(EstimatorKind::RowPermutation),
+            proto::Estimator::TreeRowSample => Some(EstimatorKind::TreeRowSample),
         }
     }
 }
@@ -461,6 +462,7 @@ impl From<EstimatorKind> for proto::Estimator {
             EstimatorKind::TreeExact => proto::Estimator::TreeExact,
             EstimatorKind::LinearExact => proto::Estimator::LinearExact,
             EstimatorKind::RowPermutation => proto::Estimator::RowPermutation,
+            EstimatorKind::TreeRowSample => proto::Estimator::TreeRowSample,
         }
     }
 }

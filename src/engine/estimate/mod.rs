@@ -40,6 +40,9 @@ pub enum EstimatorKind {
     /// values, for when one coalition over all background rows is too
     /// expensive.
     RowPermutation,
+    /// The exact tree algorithm's per-row pass over a random subset of
+    /// background rows, for when the whole pass does not fit.
+    TreeRowSample,
 }
 
 impl EstimatorKind {
@@ -53,6 +56,7 @@ impl EstimatorKind {
             EstimatorKind::TreeExact => "TREE_EXACT",
             EstimatorKind::LinearExact => "LINEAR_EXACT",
             EstimatorKind::RowPermutation => "ROW_PERMUTATION",
+            EstimatorKind::TreeRowSample => "TREE_ROW_SAMPLE",
         }
     }
 
