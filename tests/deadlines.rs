@@ -1,5 +1,6 @@
 //! Deadlines, cancellation and the server's maxima over loopback gRPC: an
-//! exact call that cannot finish in its budget fails with
+//! exact call predicted not to finish in its budget is refused at once with
+//! FAILED_PRECONDITION, and one whose prediction was wrong fails with
 //! DEADLINE_EXCEEDED; a call its client abandons stops computing (seen
 //! through the cancellation counter on the metrics endpoint) and frees its
 //! compute thread; requests at the type maxima of the fields that size work
@@ -177,8 +178,11 @@ async fn a_cancelled_exact_call_stops_computing_and_the_server_keeps_serving() {
     server.stop().await;
 }
 
+/// The planner prices EXACT from the measured row cost: 2^22 coalitions of
+/// 64 rows cannot finish in 50 ms, so the call is refused before any
+/// computing, with the predicted time.
 #[tokio::test]
-async fn an_exact_call_past_its_budget_fails_with_deadline_exceeded() {
+async fn an_exact_call_predicted_past_its_budget_is_refused_at_once() {
     let dir = tempfile::tempdir().unwrap();
     let server = support::start(dir.path()).await;
     server
@@ -191,9 +195,12 @@ async fn an_exact_call_past_its_budget_fails_with_deadline_exceeded() {
         .explain(exact_request(50))
         .await
         .unwrap_err();
-    assert_eq!(status.code(), Code::DeadlineExceeded, "{status:?}");
+    assert_eq!(status.code(), Code::FailedPrecondition, "{status:?}");
     assert!(
-        status.message().starts_with("budget_ms:"),
+        status
+            .message()
+            .starts_with("estimator: EXACT is predicted to take")
+            && status.message().contains("50.000 ms budget"),
         "{}",
         status.message()
     );
@@ -203,6 +210,44 @@ async fn an_exact_call_past_its_budget_fails_with_deadline_exceeded() {
         .await
         .unwrap();
     server.stop().await;
+}
+
+/// When the prediction is wrong (here a row cost of 0 is injected, which
+/// the planner prices at its floor of 1 ns a row: 2^22 × 64 rows ≈ 268 ms,
+/// inside a 300 ms budget, while filling and predicting 268 million rows
+/// takes seconds), the exact computation still checks the deadline and
+/// fails with DEADLINE_EXCEEDED rather than running on.
+#[test]
+fn an_exact_computation_predicted_wrongly_still_stops_at_its_deadline() {
+    use std::sync::Arc;
+
+    use apportion::engine::{ErrorKind, Players, PreparedModel, Request, prepare};
+    use apportion::model::{LinearModel, Link};
+
+    let mut rng = ChaCha8Rng::seed_from_u64(7);
+    let background = ndarray::Array2::from_shape_fn((64, PLAYERS), |_| rng.random_range(-1.0..1.0));
+    let model = LinearModel::try_new(vec![0.5; PLAYERS], 0.3, Link::Logistic).unwrap();
+    let prepared = Arc::new(
+        PreparedModel::try_new(
+            Arc::new(model),
+            Players::singletons(PLAYERS),
+            background,
+            0.0,
+        )
+        .unwrap(),
+    );
+    let request = Request {
+        estimator: Some(apportion::engine::EstimatorKind::Exact),
+        budget: Duration::from_millis(300),
+        max_evaluations: 1 << PLAYERS,
+        ..Request::new(vec![0.5; PLAYERS])
+    };
+    let job = prepare(&prepared, request).unwrap();
+    let error = job
+        .run(std::time::Instant::now() + Duration::from_millis(300))
+        .unwrap_err();
+    assert_eq!(error.kind, ErrorKind::DeadlineExceeded, "{error:?}");
+    assert_eq!(error.field, "budget_ms");
 }
 
 #[tokio::test]

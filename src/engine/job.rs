@@ -159,6 +159,34 @@ enum Work {
         max_evaluations: u64,
         tolerance: f64,
     },
+    /// Joint (permutation, background row) sampling of the marginal game,
+    /// when one coalition over all background rows does not fit; stops at
+    /// the tolerance (0: the default from its estimated ends), `max_rows`
+    /// model rows or the deadline.
+    RowSample {
+        max_rows: u64,
+        round_rows: u64,
+        tolerance: f64,
+    },
+    /// The tree algorithm's per-row pass over at most `max_rows` background
+    /// rows in random order, when the whole pass does not fit.
+    TreeRowSample { max_rows: u64, tolerance: f64 },
+}
+
+/// Rounds of a joint row sampler per budget: the deadline is checked
+/// between rounds, so a round is sized to a fraction of the budget at the
+/// measured row cost (common practice, no source: a stop then lags the
+/// deadline by at most about an eighth of the budget).
+const ROUNDS_PER_BUDGET: f64 = 8.0;
+
+/// Most model rows one batched call of the joint row sampler fills.
+const MAX_ROUND_ROWS: u64 = 4096;
+
+/// Model rows per round of the joint row sampler for `budget` at
+/// `row_cost_ns` per row.
+fn round_rows(budget: Duration, row_cost_ns: f64) -> u64 {
+    let rows = budget.as_nanos() as f64 / ROUNDS_PER_BUDGET / row_cost_ns.max(1.0);
+    (rows.floor() as u64).clamp(1, MAX_ROUND_ROWS)
 }
 
 /// A validated, planned request. Owns what it needs (the prepared model is
@@ -256,11 +284,28 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
         row_cost_ns: model.row_cost_ns(),
         exact_cost_ns: model.exact_cost_ns(matches!(removal, ValidRemoval::Fixed(_))),
         enumeration_cap: request.enumeration_cap,
+        row_sampling: removal == ValidRemoval::Marginal
+            && instances == 1
+            && matches!(request.target, Target::Output | Target::Probability),
+        tree_row_cost_ns: match shape {
+            ModelShape::Trees => model.exact_cost_ns(true),
+            _ => None,
+        },
+        background_rows,
     })?;
     let work = match chosen.estimator {
         EstimatorKind::TreeExact => Work::TreeExact,
         EstimatorKind::LinearExact => Work::LinearExact,
         EstimatorKind::Exact => Work::Enumerate {
+            tolerance: request.tolerance,
+        },
+        EstimatorKind::TreeRowSample => Work::TreeRowSample {
+            max_rows: chosen.max_evaluations,
+            tolerance: request.tolerance,
+        },
+        EstimatorKind::RowPermutation => Work::RowSample {
+            max_rows: chosen.max_evaluations,
+            round_rows: round_rows(request.budget, model.row_cost_ns()),
             tolerance: request.tolerance,
         },
         sampled => Work::Sample {
@@ -378,6 +423,64 @@ impl Job {
                 let estimate = estimate::linear::explain(form, players, &self.instance, reference)?;
                 (estimate, Counts::default())
             }
+            Work::TreeRowSample { max_rows, .. } => {
+                let Structure::Trees(ensemble) = model.structure() else {
+                    return Err(self.not_planned("a tree ensemble"));
+                };
+                let stopping = Stopping {
+                    max_evaluations: *max_rows,
+                    ..stopping
+                };
+                let (estimate, rows) = estimate::tree::explain_row_sample(
+                    ensemble,
+                    players,
+                    &self.instance,
+                    model.background(),
+                    self.summary,
+                    &stopping,
+                    self.seed,
+                )?;
+                // No coalition value is computed; the rows predicted are
+                // the instance and each background row walked.
+                let counts = Counts {
+                    coalitions: 0,
+                    model_rows: rows + 1,
+                    cache_hits: 0,
+                };
+                (estimate, counts)
+            }
+            Work::RowSample {
+                max_rows,
+                round_rows,
+                ..
+            } => {
+                let scale = if self.target == Target::Probability {
+                    Link::Logistic
+                } else {
+                    Link::Identity
+                };
+                let input = estimate::row_permutation::RowSampling {
+                    model: model.model(),
+                    players,
+                    background: model.background(),
+                    instance: &self.instance,
+                    scale,
+                    round_rows: *round_rows,
+                };
+                let stopping = Stopping {
+                    max_evaluations: *max_rows,
+                    ..stopping
+                };
+                let sampled = estimate::row_permutation::shapley(&input, &stopping, self.seed)?;
+                // Each model row is the value of one coalition of a one-row
+                // game, so both counters count rows.
+                let counts = Counts {
+                    coalitions: sampled.model_rows,
+                    model_rows: sampled.model_rows,
+                    cache_hits: 0,
+                };
+                (sampled.estimate, counts)
+            }
             Work::Enumerate { .. } | Work::Sample { .. } => self.run_on_game(stopping)?,
         };
         let finite = estimate.value_full.is_finite()
@@ -475,7 +578,10 @@ impl Job {
     /// game's ends once they are known).
     fn tolerance(&self) -> f64 {
         match self.work {
-            Work::Enumerate { tolerance } | Work::Sample { tolerance, .. } => tolerance,
+            Work::Enumerate { tolerance }
+            | Work::Sample { tolerance, .. }
+            | Work::RowSample { tolerance, .. }
+            | Work::TreeRowSample { tolerance, .. } => tolerance,
             Work::TreeExact | Work::LinearExact => 0.0,
         }
     }

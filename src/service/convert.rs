@@ -514,6 +514,8 @@ impl From<proto::Estimator> for Option<EstimatorKind> {
             proto::Estimator::Msr => Some(EstimatorKind::MaximumSampleReuse),
             proto::Estimator::TreeExact => Some(EstimatorKind::TreeExact),
             proto::Estimator::LinearExact => Some(EstimatorKind::LinearExact),
+            proto::Estimator::RowPermutation => Some(EstimatorKind::RowPermutation),
+            proto::Estimator::TreeRowSample => Some(EstimatorKind::TreeRowSample),
         }
     }
 }
@@ -528,6 +530,8 @@ impl From<EstimatorKind> for proto::Estimator {
             EstimatorKind::MaximumSampleReuse => proto::Estimator::Msr,
             EstimatorKind::TreeExact => proto::Estimator::TreeExact,
             EstimatorKind::LinearExact => proto::Estimator::LinearExact,
+            EstimatorKind::RowPermutation => proto::Estimator::RowPermutation,
+            EstimatorKind::TreeRowSample => proto::Estimator::TreeRowSample,
         }
     }
 }

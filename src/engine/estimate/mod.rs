@@ -17,6 +17,7 @@ pub mod linear;
 pub mod msr;
 pub mod permutation;
 pub mod regression;
+pub mod row_permutation;
 mod sampling;
 pub mod tree;
 
@@ -35,6 +36,13 @@ pub enum EstimatorKind {
     MaximumSampleReuse,
     TreeExact,
     LinearExact,
+    /// Joint (permutation, background row) sampling of marginal Shapley
+    /// values, for when one coalition over all background rows is too
+    /// expensive.
+    RowPermutation,
+    /// The exact tree algorithm's per-row pass over a random subset of
+    /// background rows, for when the whole pass does not fit.
+    TreeRowSample,
 }
 
 impl EstimatorKind {
@@ -47,6 +55,8 @@ impl EstimatorKind {
             EstimatorKind::MaximumSampleReuse => "MSR",
             EstimatorKind::TreeExact => "TREE_EXACT",
             EstimatorKind::LinearExact => "LINEAR_EXACT",
+            EstimatorKind::RowPermutation => "ROW_PERMUTATION",
+            EstimatorKind::TreeRowSample => "TREE_ROW_SAMPLE",
         }
     }
 
