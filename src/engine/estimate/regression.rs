@@ -297,7 +297,15 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
             let mut std_errors =
                 std_errors(&fit, &samples, &weights, &factors, &noise_shares, players);
             with_end_noise(&fit, &equations, &mut std_errors, end_variances);
-            let met = complete || stopping.tolerance_met(&std_errors);
+            // A stratum's spread needs two pairs to be seen at all: with
+            // fewer, a std error of 0 says nothing, so no convergence is
+            // claimed from it (seen at the minimum of 2p + 2 coalitions,
+            // where one pair per stratum reported 0 beside a 23% error).
+            let spread_seen = samples.len() as u64 >= PAIRS_TO_CONVERGE
+                && strata
+                    .iter()
+                    .all(|s| s.drawn >= 2 || s.drawn as f64 >= s.pairs);
+            let met = complete || (spread_seen && stopping.tolerance_met(&std_errors));
             result = Some((fit.values, std_errors));
             if met {
                 converged = true;
@@ -310,6 +318,10 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
     }
     finish(result, ends, converged)
 }
+
+/// Fewest sampled pairs from which a leverage fit's std errors are read
+/// as converged (as the row samplers require).
+const PAIRS_TO_CONVERGE: u64 = 30;
 
 /// The exact weighted fit over all `2^p` coalitions: minimises
 /// `Σ_S k(S) (v(S) - v(∅) - Σ_{i∈S} phi_i)²` over the coalitions other than
