@@ -176,6 +176,36 @@ impl Entry {
     }
 }
 
+#[cfg(test)]
+impl Registry {
+    /// Unit tests only (not compiled into the library): serves `spec` as
+    /// version 1 with its model replaced by `model`, in memory only, so the
+    /// service's tests can run a model that misbehaves. No API reaches it.
+    /// `row_cost_ns` steers the planner, and so whether a call computes
+    /// inline or on the compute pool.
+    pub(crate) fn serve_with_model_for_test(
+        &self,
+        spec: ModelSpec,
+        model: Arc<dyn Model>,
+        row_cost_ns: f64,
+    ) {
+        let mut validated = validate::validate(spec, None).expect("a valid test spec");
+        validated.model = model;
+        let entry = validated
+            .into_entry(row_cost_ns)
+            .expect("a preparable test model");
+        let model_id = entry.info.model_id.clone();
+        let mut entry = entry;
+        entry.info.version = 1;
+        self.models
+            .write()
+            .unwrap_or_else(PoisonError::into_inner)
+            .entry(model_id)
+            .or_default()
+            .insert(1, Arc::new(entry));
+    }
+}
+
 /// A file skipped on open, and why; or a format-1 record that was served
 /// but could not be rewritten with a record digest (the reason says so).
 #[derive(Debug, Clone, PartialEq, Eq)]
