@@ -22,6 +22,9 @@ pub const CACHE_HITS: &str = "apportion_cache_hits_total";
 /// Computations stopped because their call was cancelled or dropped before
 /// the answer (counter).
 pub const COMPUTATIONS_CANCELLED: &str = "apportion_computations_cancelled_total";
+/// Panics caught by the guard around computations and registrations, by
+/// `work`; each answered its caller with INTERNAL (counter).
+pub const PANICS: &str = "apportion_panics_total";
 /// Model versions currently registered (gauge).
 pub const REGISTERED_MODELS: &str = "apportion_registered_models";
 
@@ -109,6 +112,10 @@ fn describe_metrics() {
     metrics::describe_counter!(
         COMPUTATIONS_CANCELLED,
         "computations stopped because their call was cancelled"
+    );
+    metrics::describe_counter!(
+        PANICS,
+        "panics caught around computations and registrations, each answered INTERNAL"
     );
     metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
 }

@@ -329,3 +329,81 @@ async fn hostile_sizes_get_precise_statuses_and_the_server_keeps_serving() {
     }
     server.stop().await;
 }
+
+#[tokio::test]
+async fn a_message_over_the_maximum_gets_resource_exhausted_both_ways() {
+    // gRPC status codes, grpc.io documentation: a message larger than the
+    // configured maximum, sent or received, is RESOURCE_EXHAUSTED (tonic
+    // alone answers OUT_OF_RANGE).
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start(dir.path()).await;
+    server
+        .registry_client()
+        .register_model(wide_model())
+        .await
+        .unwrap();
+    let limit = Config::default().max_message_bytes;
+    // 65 MiB of instance values, over the default 64 MiB.
+    let oversize = proto::ExplainRequest {
+        instance: vec![0.5; (65 << 20) / 8],
+        ..small_request()
+    };
+    let mut attributions = server.attributions_client();
+    let status = attributions.explain(oversize).await.unwrap_err();
+    assert_eq!(status.code(), Code::ResourceExhausted, "{status:?}");
+    assert!(status.message().contains("max_message_mib"), "{status:?}");
+    assert!(status.message().contains(&limit.to_string()), "{status:?}");
+    attributions
+        .explain(small_request())
+        .await
+        .expect("the server keeps serving");
+    server.stop().await;
+
+    // An answer over the maximum: a server allowing 2 KiB messages lists
+    // more models than fit in one.
+    let dir = tempfile::tempdir().unwrap();
+    let server = support::start_with(Config {
+        data_dir: Some(dir.path().to_path_buf()),
+        compute_threads: 1,
+        max_message_bytes: 2048,
+        ..Config::default()
+    })
+    .await;
+    let mut registry = server.registry_client();
+    for i in 0..40 {
+        registry
+            .register_model(proto::RegisterModelRequest {
+                model_id: format!("small-{i}"),
+                features: vec![proto::Feature {
+                    name: "x".into(),
+                    ..Default::default()
+                }],
+                model: Some(Model::Linear(proto::LinearModel {
+                    weights: vec![1.0],
+                    intercept: 0.0,
+                })),
+                link: proto::Link::Identity as i32,
+                background: Some(proto::Matrix {
+                    rows: 1,
+                    cols: 1,
+                    values: vec![0.0],
+                }),
+                ..Default::default()
+            })
+            .await
+            .unwrap();
+    }
+    let status = registry
+        .list_models(proto::ListModelsRequest {})
+        .await
+        .unwrap_err();
+    assert_eq!(status.code(), Code::ResourceExhausted, "{status:?}");
+    registry
+        .get_model(proto::GetModelRequest {
+            model_id: "small-3".into(),
+            version: 0,
+        })
+        .await
+        .expect("the server keeps serving");
+    server.stop().await;
+}

@@ -350,7 +350,7 @@ fn damaged_files_are_reported_and_skipped_while_the_rest_is_served() {
             .map(|p| p.reason.clone())
             .unwrap()
     };
-    assert!(why(&flipped).contains("checksum"), "{}", why(&flipped));
+    assert!(why(&flipped).contains("digest"), "{}", why(&flipped));
     assert!(why(&stray).contains("temporary"), "{}", why(&stray));
 
     for id in ["truncated", "garbage", "flipped"] {
@@ -371,6 +371,134 @@ fn damaged_files_are_reported_and_skipped_while_the_rest_is_served() {
             .version,
         2
     );
+}
+
+/// `text` with the first ASCII digit at or after `from` changed to another
+/// digit that keeps the JSON valid (never a new leading zero), so only a
+/// digest can notice.
+fn bump_digit(text: &str, from: usize) -> String {
+    let at = from
+        + text[from..]
+            .bytes()
+            .position(|byte| byte.is_ascii_digit())
+            .expect("a digit follows");
+    let digit = text.as_bytes()[at];
+    let bumped = if digit == b'9' { b'8' } else { digit + 1 };
+    let mut altered = text.as_bytes().to_vec();
+    altered[at] = bumped;
+    String::from_utf8(altered).unwrap()
+}
+
+/// The offset just after `key`'s `"key":` in a compact JSON record.
+fn after_key(text: &str, key: &str) -> usize {
+    let pattern = format!("\"{key}\":");
+    text.find(&pattern)
+        .unwrap_or_else(|| panic!("{key} in the record"))
+        + pattern.len()
+}
+
+#[test]
+fn every_damaged_byte_of_a_record_is_reported_and_never_served() {
+    // Common practice, no source: a record that differs in any way from
+    // what was written — cut short, a flipped bit, one digit of a header
+    // field or of a background value — must be reported and never served,
+    // and must not stop any other record from loading.
+    let dir = tempfile::tempdir().unwrap();
+    let (registry, _) = Registry::open(dir.path()).unwrap();
+    let pristine_ids = ["kept-a", "kept-b"];
+    registry.register(linear_spec("kept-a", 90)).unwrap();
+    registry.register(tree_spec("kept-b", 91)).unwrap();
+    let pristine: Vec<ModelInfo> = pristine_ids
+        .iter()
+        .map(|id| registry.get(id, 0).unwrap().info().clone())
+        .collect();
+    // One damaged copy per case; each case gets its own model id so the
+    // reports can be told apart.
+    type Damage = Box<dyn Fn(&str) -> Vec<u8>>;
+    let mut cases: Vec<(String, Damage)> = Vec::new();
+    for fraction in [0.0, 0.01, 0.25, 0.5, 0.75, 0.999] {
+        cases.push((
+            format!("cut-{}", (fraction * 1000.0) as u32),
+            Box::new(move |text: &str| {
+                let keep = ((text.len() as f64) * fraction) as usize;
+                text.as_bytes()[..keep.min(text.len() - 1)].to_vec()
+            }),
+        ));
+    }
+    for fraction in [0.0, 0.1, 0.3, 0.5, 0.7, 0.9, 0.99] {
+        // Bit 0 flipped: a digit becomes another digit, a letter another
+        // letter, punctuation something else.
+        cases.push((
+            format!("flip-{}", (fraction * 100.0) as u32),
+            Box::new(move |text: &str| {
+                let mut bytes = text.as_bytes().to_vec();
+                let at = (((bytes.len() - 1) as f64) * fraction) as usize;
+                bytes[at] ^= 1;
+                bytes
+            }),
+        ));
+    }
+    for key in ["row_cost_ns", "registered_unix_ms", "values", "intercept"] {
+        cases.push((
+            format!("digit-{}", key.replace('_', "-")),
+            Box::new(move |text: &str| bump_digit(text, after_key(text, key)).into_bytes()),
+        ));
+    }
+    // The last digit of the registration time: a shift of milliseconds.
+    cases.push((
+        "digit-last-ms".to_string(),
+        Box::new(|text: &str| {
+            let start = after_key(text, "registered_unix_ms");
+            let end = start
+                + text[start..]
+                    .bytes()
+                    .position(|byte| !byte.is_ascii_digit())
+                    .unwrap();
+            bump_digit(text, end - 1).into_bytes()
+        }),
+    ));
+    for (id, _) in &cases {
+        registry.register(linear_spec(id, 92)).unwrap();
+    }
+    drop(registry);
+
+    let mut damaged = Vec::new();
+    for (id, damage) in &cases {
+        let path = record_path(dir.path(), id, 1);
+        let text = fs::read_to_string(&path).unwrap();
+        let altered = damage(&text);
+        assert_ne!(
+            altered,
+            text.as_bytes(),
+            "{id}: the damage changes the file"
+        );
+        fs::write(&path, altered).unwrap();
+        damaged.push(path);
+    }
+
+    let (registry, problems) = Registry::open(dir.path()).unwrap();
+    let mut reported: Vec<PathBuf> = problems.iter().map(|p| p.path.clone()).collect();
+    reported.sort();
+    damaged.sort();
+    assert_eq!(reported, damaged, "{problems:#?}");
+    for problem in &problems {
+        let name = problem.path.display().to_string();
+        if name.contains("digit-") {
+            // Still valid JSON with a plausible value: only the digest
+            // tells.
+            assert!(problem.reason.contains("digest"), "{problem}");
+        }
+    }
+    for (id, _) in &cases {
+        assert!(registry.get(id, 0).is_err(), "{id} must not be served");
+    }
+    for info in &pristine {
+        assert_eq!(
+            as_registered(registry.get(&info.model_id, 0).unwrap().info()),
+            as_registered(info)
+        );
+    }
+    assert_eq!(registry.list().len(), pristine.len());
 }
 
 #[test]
@@ -612,6 +740,27 @@ fn a_record_written_without_the_import_field_loads_unchanged() {
     let text = fs::read_to_string(record_path(dir.path(), "legacy", again.version)).unwrap();
     let record: serde_json::Value = serde_json::from_str(&text).unwrap();
     assert!(record["spec"].get("imported").is_none(), "{text}");
+
+    // The open rewrote the format-1 record as format 2, sealed with a
+    // record digest over the header it had, so a later change to it shows.
+    drop(registry);
+    let upgraded_path = record_path(dir.path(), "legacy", 1);
+    let upgraded = fs::read_to_string(&upgraded_path).unwrap();
+    let record: serde_json::Value = serde_json::from_str(&upgraded).unwrap();
+    assert_eq!(record["format_version"], 2, "{upgraded}");
+    assert_eq!(record["checksum"], checksum.as_str());
+    assert_eq!(record["registered_unix_ms"], 1764000000000u64);
+    assert_eq!(record["row_cost_ns"], 40.0);
+    assert_eq!(record["record_digest"].as_str().map(str::len), Some(64));
+    let (registry, problems) = Registry::open(dir.path()).unwrap();
+    assert!(problems.is_empty(), "{problems:?}");
+    assert_eq!(registry.get("legacy", 1).unwrap().info().checksum, checksum);
+    drop(registry);
+    fs::write(&upgraded_path, upgraded.replace(":40.0,", ":41.0,")).unwrap();
+    let (registry, problems) = Registry::open(dir.path()).unwrap();
+    assert_eq!(problems.len(), 1, "{problems:?}");
+    assert!(problems[0].reason.contains("digest"), "{problems:?}");
+    assert!(registry.get("legacy", 1).is_err());
 }
 
 #[test]

@@ -12,12 +12,20 @@
 //! ```
 //!
 //! A record is one compact JSON object:
-//! `{ "format": "apportion-model", "format_version": 1, "model_id", "version",
-//! "checksum", "registered_unix_ms", "row_cost_ns", "spec": ModelSpec }`;
+//! `{ "format": "apportion-model", "format_version": 2, "model_id", "version",
+//! "checksum", "registered_unix_ms", "row_cost_ns", "spec": ModelSpec,
+//! "record_digest" }`;
 //! the spec's `imported` member is present only for a model read from a
 //! library's file.
 //! `checksum` is the lower-case hex sha256 of the spec's compact JSON
-//! ([`spec_checksum`]) and is verified on load. The counter is
+//! ([`spec_checksum`]; what `ModelInfo` reports). `record_digest` is the
+//! sha256 of the whole record's compact JSON without `record_digest`, so it
+//! covers the header (`row_cost_ns`, `registered_unix_ms`, …), the model, the
+//! background and the provenance. Both are verified on load. A format-1
+//! record (no `record_digest`) is still read: its checksum is verified, it is
+//! served, and it is rewritten as format 2 when the registry opens, so its
+//! header is protected from then on (a change made to it before that cannot
+//! be detected). The counter is
 //! `{ "format": "apportion-version-counter", "format_version": 1, "model_id",
 //! "last_version" }`. The next version of a model is one above the highest of
 //! the counter and every `v<version>.json` name present, so versions are
@@ -172,7 +180,38 @@ impl Entry {
     }
 }
 
-/// A file skipped on open, and why.
+#[cfg(test)]
+impl Registry {
+    /// Unit tests only (not compiled into the library): serves `spec` as
+    /// version 1 with its model replaced by `model`, in memory only, so the
+    /// service's tests can run a model that misbehaves. No API reaches it.
+    /// `row_cost_ns` steers the planner, and so whether a call computes
+    /// inline or on the compute pool.
+    pub(crate) fn serve_with_model_for_test(
+        &self,
+        spec: ModelSpec,
+        model: Arc<dyn Model>,
+        row_cost_ns: f64,
+    ) {
+        let mut validated = validate::validate(spec, None).expect("a valid test spec");
+        validated.model = model;
+        let entry = validated
+            .into_entry(row_cost_ns)
+            .expect("a preparable test model");
+        let model_id = entry.info.model_id.clone();
+        let mut entry = entry;
+        entry.info.version = 1;
+        self.models
+            .write()
+            .unwrap_or_else(PoisonError::into_inner)
+            .entry(model_id)
+            .or_default()
+            .insert(1, Arc::new(entry));
+    }
+}
+
+/// A file skipped on open, and why; or a format-1 record that was served
+/// but could not be rewritten with a record digest (the reason says so).
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct LoadProblem {
     pub path: PathBuf,
@@ -291,6 +330,33 @@ impl Registry {
                 Ok(mut entry) => {
                     entry.info.version = record.version;
                     entry.info.registered_unix_ms = record.registered_unix_ms;
+                    if record.format_version == store::LEGACY_FORMAT_VERSION {
+                        // A format-1 record's header is trusted this once
+                        // (its spec passed its checksum) and sealed with a
+                        // whole-record digest, so a later change is caught.
+                        let spec = entry.spec();
+                        let upgraded = Record {
+                            format: String::new(),
+                            format_version: FORMAT_VERSION,
+                            model_id: record.model_id.clone(),
+                            version: record.version,
+                            checksum: entry.info.checksum.clone(),
+                            registered_unix_ms: record.registered_unix_ms,
+                            row_cost_ns: record.row_cost_ns,
+                            spec: &spec,
+                            record_digest: String::new(),
+                        };
+                        if let Err(error) = store.write_record(upgraded) {
+                            scan.problem(
+                                &loaded.path,
+                                &format!(
+                                    "a format-1 record, served, but it could not be rewritten \
+                                     with a record digest ({error}); its header stays unprotected \
+                                     until the directory is writable and the server restarts"
+                                ),
+                            );
+                        }
+                    }
                     models
                         .entry(record.model_id)
                         .or_default()
@@ -364,7 +430,7 @@ impl Registry {
 
         let spec = entry.spec();
         let record = Record {
-            format: "apportion-model".to_string(),
+            format: String::new(),
             format_version: FORMAT_VERSION,
             model_id: model_id.clone(),
             version,
@@ -372,8 +438,9 @@ impl Registry {
             registered_unix_ms: entry.info.registered_unix_ms,
             row_cost_ns,
             spec: &spec,
+            record_digest: String::new(),
         };
-        if let Err(error) = self.store.write_record(&record) {
+        if let Err(error) = self.store.write_record(record) {
             self.store.discard_record(&model_id, version);
             return Err(error);
         }

@@ -22,8 +22,15 @@ use super::{LoadProblem, ModelSpec, RegistryError, check_model_id};
 const RECORD_FORMAT: &str = "apportion-model";
 /// `format` of a per-model version counter.
 const COUNTER_FORMAT: &str = "apportion-version-counter";
-/// The one layout version this build reads and writes.
-pub const FORMAT_VERSION: u32 = 1;
+/// The record layout this build writes: version 2 adds `record_digest`,
+/// which covers every byte that is served (header, model, background,
+/// provenance), where version 1's `checksum` covers the spec only.
+pub const FORMAT_VERSION: u32 = 2;
+/// The earlier record layout, still read (its content checksum verified) and
+/// rewritten as [`FORMAT_VERSION`] when the registry opens.
+pub const LEGACY_FORMAT_VERSION: u32 = 1;
+/// The counter's layout has not changed.
+const COUNTER_FORMAT_VERSION: u32 = 1;
 
 const MODELS_DIR: &str = "models";
 const COUNTER_FILE: &str = "versions.json";
@@ -64,6 +71,54 @@ pub(crate) struct Record<S> {
     pub registered_unix_ms: u64,
     pub row_cost_ns: f64,
     pub spec: S,
+    /// The sha256 (lower-case hex) of this record's compact JSON written
+    /// without this member ([`record_digest`]). Empty only in a format-1
+    /// record, which is then written without it.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub record_digest: String,
+}
+
+/// A `Write` that only hashes what it is given.
+struct HashWriter(Sha256);
+
+impl Write for HashWriter {
+    fn write(&mut self, bytes: &[u8]) -> io::Result<usize> {
+        self.0.update(bytes);
+        Ok(bytes.len())
+    }
+    fn flush(&mut self) -> io::Result<()> {
+        Ok(())
+    }
+}
+
+/// The sha256 (lower-case hex) of `value`'s compact JSON.
+fn json_sha256(value: &impl Serialize) -> serde_json::Result<String> {
+    let mut writer = HashWriter(Sha256::new());
+    serde_json::to_writer(&mut writer, value)?;
+    let digest = writer.0.finalize();
+    Ok(digest.iter().map(|byte| format!("{byte:02x}")).collect())
+}
+
+/// The whole-record digest: the sha256 of the record's compact JSON with
+/// `record_digest` left out (an empty one is not written). It is computed
+/// over what was parsed, so any change that alters a served value — a
+/// header digit, a background value, a dropped `imported` member — fails it,
+/// and the JSON numbers round-trip exactly (serde_json's `float_roundtrip`).
+pub(crate) fn record_digest<S: Serialize>(record: &Record<S>) -> serde_json::Result<String> {
+    // The same record with an empty digest (serde then skips it); the spec
+    // is borrowed, the short header strings copied.
+    let unsealed = Record {
+        format: record.format.clone(),
+        format_version: record.format_version,
+        model_id: record.model_id.clone(),
+        version: record.version,
+        checksum: record.checksum.clone(),
+        registered_unix_ms: record.registered_unix_ms,
+        row_cost_ns: record.row_cost_ns,
+        spec: &record.spec,
+        record_digest: String::new(),
+    };
+    json_sha256(&unsealed)
 }
 
 /// The highest version ever assigned to a model, kept so deleted versions
@@ -80,24 +135,11 @@ struct Counter {
 /// Fields are written in declaration order and numbers in their shortest
 /// round-trip form, so equal specs always give equal bytes.
 pub fn spec_checksum(spec: &ModelSpec) -> Result<String, RegistryError> {
-    struct HashWriter(Sha256);
-    impl Write for HashWriter {
-        fn write(&mut self, bytes: &[u8]) -> io::Result<usize> {
-            self.0.update(bytes);
-            Ok(bytes.len())
-        }
-        fn flush(&mut self) -> io::Result<()> {
-            Ok(())
-        }
-    }
-    let mut writer = HashWriter(Sha256::new());
-    serde_json::to_writer(&mut writer, spec).map_err(|source| RegistryError::Io {
+    json_sha256(spec).map_err(|source| RegistryError::Io {
         path: PathBuf::new(),
         action: "serialise the model spec for its checksum",
         source: source.into(),
-    })?;
-    let digest = writer.0.finalize();
-    Ok(digest.iter().map(|byte| format!("{byte:02x}")).collect())
+    })
 }
 
 /// Serde for a background's values: NaN (a missing value) is written as
@@ -219,13 +261,24 @@ impl Store {
         self.models.join(model_id)
     }
 
-    /// Writes one model version durably; returns once it would survive a
-    /// crash.
-    pub fn write_record(&self, record: &Record<&ModelSpec>) -> Result<(), RegistryError> {
+    /// Writes one model version durably, as [`FORMAT_VERSION`] with its
+    /// whole-record digest (whatever `format_version` and `record_digest`
+    /// the caller set); returns once it would survive a crash.
+    pub fn write_record(&self, record: Record<&ModelSpec>) -> Result<(), RegistryError> {
         let dir = self.model_dir(&record.model_id);
         ensure_dir(&dir)?;
+        let path = dir.join(version_file_name(record.version));
+        let mut record = Record {
+            format: RECORD_FORMAT.to_string(),
+            format_version: FORMAT_VERSION,
+            record_digest: String::new(),
+            ..record
+        };
+        record.record_digest = record_digest(&record).map_err(|error| {
+            io_error(&path, "serialise the record for its digest")(error.into())
+        })?;
         write_durably(&dir, &version_file_name(record.version), |writer| {
-            serde_json::to_writer(writer, record).map_err(io::Error::from)
+            serde_json::to_writer(writer, &record).map_err(io::Error::from)
         })
     }
 
@@ -244,7 +297,7 @@ impl Store {
         ensure_dir(&dir)?;
         let counter = Counter {
             format: COUNTER_FORMAT.to_string(),
-            format_version: FORMAT_VERSION,
+            format_version: COUNTER_FORMAT_VERSION,
             model_id: model_id.to_string(),
             last_version,
         };
@@ -408,9 +461,9 @@ fn read_counter(path: &Path, model_id: &str) -> Result<u64, String> {
     let counter: Counter = serde_json::from_slice(&bytes).map_err(|error| {
         format!("not a valid version counter (truncated or overwritten?): {error}")
     })?;
-    if counter.format != COUNTER_FORMAT || counter.format_version != FORMAT_VERSION {
+    if counter.format != COUNTER_FORMAT || counter.format_version != COUNTER_FORMAT_VERSION {
         return Err(format!(
-            "format {:?} version {} is not a version counter this build reads ({COUNTER_FORMAT:?} version {FORMAT_VERSION})",
+            "format {:?} version {} is not a version counter this build reads ({COUNTER_FORMAT:?} version {COUNTER_FORMAT_VERSION})",
             counter.format, counter.format_version
         ));
     }
@@ -425,14 +478,37 @@ fn read_counter(path: &Path, model_id: &str) -> Result<u64, String> {
 
 fn read_record(path: &Path, model_id: &str, version: u64) -> Result<Record<ModelSpec>, String> {
     let bytes = read_limited(path)?;
-    let record: Record<ModelSpec> = serde_json::from_slice(&bytes).map_err(|error| {
+    let mut record: Record<ModelSpec> = serde_json::from_slice(&bytes).map_err(|error| {
         format!("not a valid model record (truncated or overwritten?): {error}")
     })?;
-    if record.format != RECORD_FORMAT || record.format_version != FORMAT_VERSION {
-        return Err(format!(
-            "format {:?} version {} is not a record this build reads ({RECORD_FORMAT:?} version {FORMAT_VERSION})",
-            record.format, record.format_version
-        ));
+    match record.format_version {
+        _ if record.format != RECORD_FORMAT => {
+            return Err(format!(
+                "format {:?} is not a record this build reads ({RECORD_FORMAT:?})",
+                record.format
+            ));
+        }
+        FORMAT_VERSION => {
+            // Checked first: with the digest intact, every header field
+            // below is as it was written.
+            let written = std::mem::take(&mut record.record_digest);
+            let actual = record_digest(&record).map_err(|error| error.to_string())?;
+            if written != actual {
+                return Err(format!(
+                    "record digest mismatch: the record says {written:?} but its header, model, \
+                     background and provenance hash to {actual}; the file was altered or damaged"
+                ));
+            }
+            record.record_digest = written;
+        }
+        // A format-1 record has no digest; one that claims one was altered.
+        LEGACY_FORMAT_VERSION if record.record_digest.is_empty() => {}
+        version => {
+            return Err(format!(
+                "format version {version} is not one this build reads ({FORMAT_VERSION}, or \
+                 {LEGACY_FORMAT_VERSION} without a record digest)"
+            ));
+        }
     }
     if record.model_id != model_id || record.spec.model_id != model_id || record.version != version
     {

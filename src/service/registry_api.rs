@@ -7,6 +7,7 @@ use std::sync::Arc;
 use tonic::{Request, Response, Status};
 
 use super::auth::Access;
+use super::pool::guarded;
 use super::proto;
 use super::proto::registry_server::Registry as RegistryApi;
 use super::server::{Shared, observe};
@@ -34,12 +35,14 @@ impl RegistryService {
         // kept off the reactor (but outside the explain pool's permits, so
         // it is never refused for being slow).
         let info = tokio::task::spawn_blocking(move || {
-            let info = registry.register(spec);
-            set_registered_models(&registry);
-            info
+            guarded("registration", || {
+                let info = registry.register(spec);
+                set_registered_models(&registry);
+                info
+            })
         })
         .await
-        .map_err(|e| ServiceError::Internal(format!("registration failed: {e}")))??;
+        .map_err(|e| ServiceError::Internal(format!("registration failed: {e}")))???;
         Ok(proto::ModelInfo::from(&info))
     }
 

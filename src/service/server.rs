@@ -10,6 +10,7 @@ use std::time::Duration;
 
 use tokio::net::TcpListener;
 use tonic::Status;
+use tonic::codegen::http;
 use tonic::metadata::MetadataMap;
 
 use super::attributions::AttributionsService;
@@ -21,7 +22,7 @@ use super::proto::attributions_server::AttributionsServer;
 use super::proto::diagnostics_server::DiagnosticsServer;
 use super::proto::registry_server::RegistryServer;
 use super::registry_api::{RegistryService, set_registered_models};
-use super::status::{ServiceError, code_label};
+use super::status::{ServiceError, code_label, transport_status};
 use crate::registry::{LoadProblem, Registry};
 use crate::telemetry::{self, LogFormat};
 
@@ -192,6 +193,40 @@ pub(super) fn observe<T>(rpc: &'static str, result: &Result<T, Status>) {
     }
 }
 
+/// Rewrites the statuses tonic makes itself where gRPC's table says
+/// otherwise ([`transport_status`]): in the headers of a trailers-only
+/// answer (a request refused before its handler ran) and in the trailers of
+/// a streamed one (an answer refused while encoding).
+fn follow_status_table(
+    response: http::Response<tonic::body::Body>,
+) -> http::Response<tonic::body::Body> {
+    use http_body_util::BodyExt;
+
+    fn rewrite(headers: &mut http::HeaderMap) {
+        let Some(status) = Status::from_header_map(headers) else {
+            return;
+        };
+        if let Some(mapped) = transport_status(&status) {
+            for name in ["grpc-status", "grpc-message", "grpc-status-details-bin"] {
+                headers.remove(name);
+            }
+            // Only fails on a message that cannot be a header value, which
+            // ours (ASCII text) always can.
+            let _ = mapped.add_header(headers);
+        }
+    }
+    let (mut parts, body) = response.into_parts();
+    rewrite(&mut parts.headers);
+    let body = body.map_frame(|frame| match frame.into_trailers() {
+        Ok(mut trailers) => {
+            rewrite(&mut trailers);
+            http_body::Frame::trailers(trailers)
+        }
+        Err(frame) => frame,
+    });
+    http::Response::from_parts(parts, tonic::body::Body::new(body))
+}
+
 /// Serves every service (with health and reflection) on `listener` until
 /// `shutdown` completes; in-flight calls then finish before it returns.
 pub async fn run(
@@ -245,6 +280,7 @@ pub async fn run(
         "serving gRPC"
     );
     tonic::transport::Server::builder()
+        .layer(tower::util::MapResponseLayer::new(follow_status_table))
         .add_service(health)
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)

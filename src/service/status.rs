@@ -111,6 +111,27 @@ pub fn status_of(error: &ServiceError) -> Status {
     Status::new(code_of(error.kind()), message)
 }
 
+/// The status for one that tonic made itself, before any handler ran, where
+/// it differs from gRPC's table: tonic refuses a message over the server's
+/// maximum (`max_decoding_message_size`, `max_encoding_message_size`) with
+/// OUT_OF_RANGE, where the table says RESOURCE_EXHAUSTED for a message
+/// larger than the configured maximum (gRPC status codes, grpc.io
+/// documentation). The services never answer OUT_OF_RANGE themselves
+/// ([`code_of`] has no kind for it), so every OUT_OF_RANGE is tonic's.
+pub fn transport_status(status: &Status) -> Option<Status> {
+    (status.code() == Code::OutOfRange).then(|| {
+        Status::new(
+            Code::ResourceExhausted,
+            format!(
+                "the message is over this server's maximum size (setting max_message_mib): {}; \
+                 send a smaller message (fewer background or data set rows, a smaller model) or \
+                 raise max_message_mib",
+                status.message()
+            ),
+        )
+    })
+}
+
 impl From<ServiceError> for Status {
     fn from(error: ServiceError) -> Status {
         status_of(&error)
@@ -147,6 +168,15 @@ mod tests {
 
     // The code choices follow the gRPC status code guide (grpc.io, "Status
     // codes and their use in gRPC").
+
+    #[test]
+    fn tonic_size_refusals_become_resource_exhausted() {
+        let tonic_own = Status::out_of_range("decoded message length too large");
+        let mapped = transport_status(&tonic_own).expect("remapped");
+        assert_eq!(mapped.code(), Code::ResourceExhausted);
+        assert!(mapped.message().contains("max_message_mib"), "{mapped:?}");
+        assert!(transport_status(&Status::internal("bug")).is_none());
+    }
 
     #[test]
     fn engine_fields_are_renamed_to_the_api_fields() {
