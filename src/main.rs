@@ -143,6 +143,12 @@ struct ServeArgs {
     /// Most model rows one coalition value may cost (draws or background rows, times data set rows) [default: 1048576].
     #[arg(long, env = "APPORTION_MAX_COALITION_ROWS")]
     max_coalition_rows: Option<usize>,
+    /// Most instances one ExplainBatch call may carry [default: 1024].
+    #[arg(long, env = "APPORTION_MAX_BATCH_INSTANCES")]
+    max_batch_instances: Option<usize>,
+    /// Most requests of one ExplainStream computed or waiting to be sent at once [default: 16].
+    #[arg(long, env = "APPORTION_MAX_STREAM_IN_FLIGHT")]
+    max_stream_in_flight: Option<usize>,
 }
 
 impl ServeArgs {
@@ -166,6 +172,8 @@ impl ServeArgs {
             max_evaluations: self.max_evaluations,
             max_draws: self.max_draws,
             max_coalition_rows: self.max_coalition_rows,
+            max_batch_instances: self.max_batch_instances,
+            max_stream_in_flight: self.max_stream_in_flight,
         };
         Ok(given.over(file).resolve()?)
     }

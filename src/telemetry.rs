@@ -21,6 +21,13 @@ pub const CACHE_HITS: &str = "apportion_cache_hits_total";
 pub const COMPUTATIONS_CANCELLED: &str = "apportion_computations_cancelled_total";
 /// Model versions currently registered (gauge).
 pub const REGISTERED_MODELS: &str = "apportion_registered_models";
+/// ExplainStream requests read and not yet handed to the transport, over
+/// every open stream (gauge); each stream holds at most
+/// `max_stream_in_flight`.
+pub const STREAM_IN_FLIGHT: &str = "apportion_stream_requests_in_flight";
+/// Instances and stream requests answered, by rpc (counter; an item with
+/// an error counts too).
+pub const ITEMS: &str = "apportion_items_total";
 
 /// Bucket bounds of the latency histogram, in seconds: from well under a
 /// millisecond to the longest sensible budget.
@@ -108,6 +115,14 @@ fn describe_metrics() {
         "computations stopped because their call was cancelled"
     );
     metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
+    metrics::describe_gauge!(
+        STREAM_IN_FLIGHT,
+        "ExplainStream requests read and not yet handed to the transport"
+    );
+    metrics::describe_counter!(
+        ITEMS,
+        "ExplainBatch instances and ExplainStream requests answered, by rpc and code"
+    );
 }
 
 #[cfg(test)]

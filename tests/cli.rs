@@ -25,6 +25,8 @@ fn apportion() -> Command {
         "APPORTION_MAX_EVALUATIONS",
         "APPORTION_MAX_DRAWS",
         "APPORTION_MAX_COALITION_ROWS",
+        "APPORTION_MAX_BATCH_INSTANCES",
+        "APPORTION_MAX_STREAM_IN_FLIGHT",
         "RUST_LOG",
     ] {
         command.env_remove(variable);
@@ -69,11 +71,12 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     .unwrap();
     let output = apportion()
         .args(["serve", "--print-config", "--compute-threads", "1"])
-        .args(["--max-evaluations", "99"])
+        .args(["--max-evaluations", "99", "--max-stream-in-flight", "5"])
         .env("APPORTION_CONFIG", &file)
         .env("APPORTION_ADDRESS", "127.0.0.1:7002")
         .env("APPORTION_COMPUTE_THREADS", "2")
         .env("APPORTION_MAX_BUDGET_MS", "1234")
+        .env("APPORTION_MAX_BATCH_INSTANCES", "77")
         .output()
         .unwrap();
     let printed: toml::Table = toml::from_str(&succeeded(output)).unwrap();
@@ -84,6 +87,12 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     assert_eq!(printed["max_draws"].as_integer(), Some(128), "file");
     assert_eq!(printed["max_budget_ms"].as_integer(), Some(1234), "env");
     assert_eq!(printed["max_evaluations"].as_integer(), Some(99), "flag");
+    assert_eq!(
+        printed["max_stream_in_flight"].as_integer(),
+        Some(5),
+        "flag"
+    );
+    assert_eq!(printed["max_batch_instances"].as_integer(), Some(77), "env");
     let data_dir = dir.path().join("registry");
     assert_eq!(
         printed["data_dir"].as_str(),
@@ -123,6 +132,8 @@ fn the_shipped_settings_file_is_valid() {
     assert_eq!(printed["max_evaluations"].as_integer(), Some(4194304));
     assert_eq!(printed["max_draws"].as_integer(), Some(4096));
     assert_eq!(printed["max_coalition_rows"].as_integer(), Some(1048576));
+    assert_eq!(printed["max_batch_instances"].as_integer(), Some(1024));
+    assert_eq!(printed["max_stream_in_flight"].as_integer(), Some(16));
 }
 
 /// A server started from a config file, killed when dropped.

@@ -657,11 +657,54 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
     Ok(engine)
 }
 
+/// One item of a batch or a stream: the answer, or the error its unary
+/// call would have returned.
+pub fn outcome(
+    request_id: String,
+    index: u64,
+    result: std::result::Result<proto::Explanation, ServiceError>,
+) -> proto::ExplainOutcome {
+    use proto::explain_outcome::Outcome;
+    proto::ExplainOutcome {
+        request_id,
+        index,
+        outcome: Some(match result {
+            Ok(explanation) => Outcome::Explanation(explanation),
+            Err(error) => Outcome::Error(super::status::item_error(&error)),
+        }),
+    }
+}
+
 /// The answer on the wire: one attribution per player in player order, the
 /// principal reasons, and the accounting.
 pub fn explanation(
     entry: &Entry,
     request: &proto::ExplainRequest,
+    answer: &job::Explanation,
+    budget: Duration,
+) -> proto::Explanation {
+    let echo = Echo {
+        request_id: &request.request_id,
+        seed: request.seed,
+        max_reasons: request.max_reasons,
+    };
+    explanation_echoing(entry, &echo, answer, budget)
+}
+
+/// What an answer repeats from its request, which in a batch differs per
+/// instance.
+#[derive(Debug, Clone, Copy)]
+pub struct Echo<'a> {
+    pub request_id: &'a str,
+    pub seed: u64,
+    /// 0 = the default number of reasons.
+    pub max_reasons: u32,
+}
+
+/// [`explanation`], with the echoed fields given one by one.
+pub fn explanation_echoing(
+    entry: &Entry,
+    echo: &Echo<'_>,
     answer: &job::Explanation,
     budget: Duration,
 ) -> proto::Explanation {
@@ -677,10 +720,10 @@ pub fn explanation(
             std_error: *std_error,
         })
         .collect();
-    let limit = if request.max_reasons == 0 {
+    let limit = if echo.max_reasons == 0 {
         reasons::DEFAULT_REASONS
     } else {
-        request.max_reasons as usize
+        echo.max_reasons as usize
     };
     let reasons = reasons::principal_reasons(
         &estimate.values,
@@ -716,7 +759,7 @@ pub fn explanation(
     proto::Explanation {
         model_id: info.model_id.clone(),
         version: info.version,
-        request_id: request.request_id.clone(),
+        request_id: echo.request_id.to_string(),
         value_full: estimate.value_full,
         value_empty: estimate.value_empty,
         attributions,
@@ -725,7 +768,7 @@ pub fn explanation(
         model_rows_evaluated: answer.model_rows_evaluated,
         converged: estimate.converged,
         elapsed_us: u64::try_from(answer.elapsed.as_micros()).unwrap_or(u64::MAX),
-        seed: request.seed,
+        seed: echo.seed,
         plan_reason: answer.plan_reason.clone(),
         cache_hits: answer.cache_hits,
         efficiency_gap: estimate.efficiency_gap(),
