@@ -1,6 +1,7 @@
 //! Service throughput over loopback gRPC: requests per second and p50/p99
 //! latency of Explain beside the Echo RPC on the same server in the same
-//! run (the stack's limit).
+//! run (the stack's limit); then explanations per second of 1,000 rows
+//! through unary calls, one ExplainBatch and one ExplainStream.
 //!
 //! `cargo bench --bench service` (`-- --quick` for shorter rounds). Server
 //! and clients share this process and the machine's cores, as stated in the
@@ -221,8 +222,179 @@ fn main() {
                 100.0 * rate / echo_rate
             );
         }
+        println!();
+        bulk_table(&channels, &linear_rows(&mut rng), &scenario, rounds).await;
         let _ = stop.send(());
         let _ = server.await;
         let _ = std::fs::remove_dir_all(&data_dir);
     });
+}
+
+/// Rows explained per bulk case.
+const BULK_ROWS: usize = 1000;
+
+fn linear_rows(rng: &mut ChaCha8Rng) -> Vec<Vec<f64>> {
+    (0..BULK_ROWS)
+        .map(|_| (0..20).map(|_| rng.random_range(-1.0..1.0)).collect())
+        .collect()
+}
+
+/// One way of explaining the rows: wall time for all of them.
+async fn unary_rows(
+    channels: &[Channel],
+    shape: &proto::ExplainRequest,
+    rows: &[Vec<f64>],
+) -> Duration {
+    let started = Instant::now();
+    let mut tasks = Vec::new();
+    for task in 0..TASKS {
+        let mut client = AttributionsClient::new(channels[task % channels.len()].clone());
+        let mine: Vec<proto::ExplainRequest> = rows
+            .iter()
+            .skip(task)
+            .step_by(TASKS)
+            .map(|row| proto::ExplainRequest {
+                instance: row.clone(),
+                ..shape.clone()
+            })
+            .collect();
+        tasks.push(tokio::spawn(async move {
+            for request in mine {
+                client.explain(request).await.expect("explain");
+            }
+        }));
+    }
+    for task in tasks {
+        task.await.expect("client task");
+    }
+    started.elapsed()
+}
+
+async fn batch_rows(
+    channel: &Channel,
+    shape: &proto::ExplainRequest,
+    rows: &[Vec<f64>],
+) -> Duration {
+    let mut client = AttributionsClient::new(channel.clone());
+    let request = proto::ExplainBatchRequest {
+        request: Some(shape.clone()),
+        instances: rows
+            .iter()
+            .map(|row| proto::BatchInstance {
+                instance: row.clone(),
+                ..Default::default()
+            })
+            .collect(),
+    };
+    let started = Instant::now();
+    let answer = client
+        .explain_batch(request)
+        .await
+        .expect("batch")
+        .into_inner();
+    let elapsed = started.elapsed();
+    assert!(
+        answer.items.iter().all(|item| matches!(
+            item.outcome,
+            Some(proto::explain_outcome::Outcome::Explanation(_))
+        )),
+        "every batch row is answered"
+    );
+    elapsed
+}
+
+async fn stream_rows(
+    channel: &Channel,
+    shape: &proto::ExplainRequest,
+    rows: &[Vec<f64>],
+) -> Duration {
+    let mut client = AttributionsClient::new(channel.clone());
+    let requests: Vec<proto::ExplainRequest> = rows
+        .iter()
+        .map(|row| proto::ExplainRequest {
+            instance: row.clone(),
+            ..shape.clone()
+        })
+        .collect();
+    let started = Instant::now();
+    let mut answers = client
+        .explain_stream(tokio_stream::iter(requests))
+        .await
+        .expect("stream")
+        .into_inner();
+    let mut count = 0;
+    while let Some(outcome) = answers.message().await.expect("stream answer") {
+        assert!(matches!(
+            outcome.outcome,
+            Some(proto::explain_outcome::Outcome::Explanation(_))
+        ));
+        count += 1;
+    }
+    assert_eq!(count, rows.len());
+    started.elapsed()
+}
+
+/// Explanations per second of the same 1,000 rows three ways, the ways
+/// taking turns in each round, medians over the rounds.
+async fn bulk_table(
+    channels: &[Channel],
+    linear: &[Vec<f64>],
+    scenario: &demo::Scenario,
+    rounds: usize,
+) {
+    let applicants = scenario.applicants.nrows();
+    let trees: Vec<Vec<f64>> = (0..BULK_ROWS)
+        .map(|i| scenario.applicants.row(i % applicants).to_vec())
+        .collect();
+    let models = [
+        (
+            "20-feature logistic, LINEAR_EXACT",
+            "bench-linear",
+            linear.to_vec(),
+        ),
+        (
+            "demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT",
+            "bench-trees",
+            trees,
+        ),
+    ];
+    println!(
+        "{BULK_ROWS} rows per case; unary: {TASKS} client tasks over {} channels; batch: one ExplainBatch call; stream: one ExplainStream on one channel (16 in flight, the default); medians of {rounds} rounds",
+        channels.len()
+    );
+    println!();
+    println!(
+        "| model | unary explanations/s | ExplainBatch explanations/s | ExplainStream explanations/s | batch / unary | stream / unary |"
+    );
+    println!("|---|---|---|---|---|---|");
+    for (name, model_id, rows) in &models {
+        let shape = proto::ExplainRequest {
+            model_id: (*model_id).into(),
+            ..Default::default()
+        };
+        // Warm-up.
+        unary_rows(channels, &shape, &rows[..100]).await;
+        batch_rows(&channels[0], &shape, &rows[..100]).await;
+        stream_rows(&channels[0], &shape, &rows[..100]).await;
+        let (mut unary, mut batch, mut stream) = (Vec::new(), Vec::new(), Vec::new());
+        for _ in 0..rounds {
+            unary.push(rows.len() as f64 / unary_rows(channels, &shape, rows).await.as_secs_f64());
+            batch.push(
+                rows.len() as f64 / batch_rows(&channels[0], &shape, rows).await.as_secs_f64(),
+            );
+            stream.push(
+                rows.len() as f64 / stream_rows(&channels[0], &shape, rows).await.as_secs_f64(),
+            );
+        }
+        let median = |values: &mut Vec<f64>| {
+            values.sort_by(f64::total_cmp);
+            values[values.len() / 2]
+        };
+        let (unary, batch, stream) = (median(&mut unary), median(&mut batch), median(&mut stream));
+        println!(
+            "| {name} | {unary:.0} | {batch:.0} | {stream:.0} | {:.1}× | {:.1}× |",
+            batch / unary,
+            stream / unary
+        );
+    }
 }

@@ -355,44 +355,344 @@ pub async fn register(
     Ok(vec![info_json(&info)])
 }
 
-/// Explains each instance with the choices in `template` (its `instance`
-/// is replaced), in order.
-pub async fn explain(
+/// One input row of `apportion explain`: where it is in the file, and its
+/// instance and label, or why it could not be read.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InputRow {
+    /// The line number in the file, from 1.
+    pub line: usize,
+    pub parsed: Result<Row, String>,
+}
+
+/// An instance, with its label when the input names a label column.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Row {
+    pub instance: Vec<f64>,
+    pub label: Option<f64>,
+}
+
+/// What a run of `apportion explain` did, for its summary line.
+#[derive(Debug, Clone, Default)]
+pub struct Tally {
+    pub rows: usize,
+    pub explained: usize,
+    /// Line numbers of the rows that failed, to read or to explain.
+    pub failed_lines: Vec<usize>,
+    pub elapsed: std::time::Duration,
+}
+
+impl Tally {
+    /// One line: rows explained and failed (the first failed lines named),
+    /// time and rate.
+    pub fn summary(&self, input: &Path) -> String {
+        let seconds = self.elapsed.as_secs_f64();
+        let mut line = format!(
+            "{}: {} of {} rows explained, {} failed",
+            input.display(),
+            self.explained,
+            self.rows,
+            self.failed_lines.len()
+        );
+        if !self.failed_lines.is_empty() {
+            let mut lines = self.failed_lines.clone();
+            lines.sort_unstable();
+            let shown: Vec<String> = lines.iter().take(10).map(|l| l.to_string()).collect();
+            let more = if lines.len() > 10 { ", …" } else { "" };
+            line.push_str(&format!(" (lines {}{more})", shown.join(", ")));
+        }
+        line.push_str(&format!(
+            " in {seconds:.2} s ({:.0} rows/s)",
+            self.explained as f64 / seconds.max(1e-9)
+        ));
+        line
+    }
+}
+
+/// The answer as `apportion explain` prints it: one JSON object, with the
+/// input line it answers.
+pub fn explanation_json(line: usize, e: &proto::Explanation) -> Value {
+    let estimator =
+        proto::Estimator::try_from(e.estimator_used).map_or("UNKNOWN", |k| k.as_str_name());
+    json!({
+        "line": line,
+        "request_id": e.request_id,
+        "model_id": e.model_id,
+        "version": e.version,
+        "value_full": e.value_full,
+        "value_empty": e.value_empty,
+        "attributions": e.attributions.iter().map(|a| json!({
+            "name": a.name, "value": a.value, "std_error": a.std_error,
+        })).collect::<Vec<_>>(),
+        "estimator": estimator,
+        "plan_reason": e.plan_reason,
+        "converged": e.converged,
+        "coalitions_evaluated": e.coalitions_evaluated,
+        "elapsed_us": e.elapsed_us,
+        "reasons": e.reasons.iter().map(|r| json!({
+            "name": r.name, "code": r.reason_code, "statement": r.statement, "weight": r.weight,
+        })).collect::<Vec<_>>(),
+    })
+}
+
+/// How far a run has got, for the progress line on a terminal.
+#[derive(Debug, Clone, Copy)]
+pub struct Progress {
+    pub done: usize,
+    pub total: usize,
+    pub elapsed: std::time::Duration,
+}
+
+impl Progress {
+    /// `done/total rows, rate/s, time left`.
+    pub fn line(&self) -> String {
+        let seconds = self.elapsed.as_secs_f64().max(1e-9);
+        let rate = self.done as f64 / seconds;
+        let left = if rate > 0.0 {
+            format!("{:.0} s left", (self.total - self.done) as f64 / rate)
+        } else {
+            "time left unknown".into()
+        };
+        format!("{}/{} rows, {rate:.0}/s, {left}", self.done, self.total)
+    }
+}
+
+/// Explains every readable row over one ExplainStream with the choices in
+/// `template` (its `instance`, and its `label` where a row has one, are
+/// replaced). Each answer is written to `out` as a JSON line as it
+/// arrives (in the order answers are ready, each naming its input `line`);
+/// each bad row, read or explained, is reported to `report` with its line
+/// number, and the run goes on. `progress` is called after each answer.
+/// Fails only when the stream itself fails (the server cannot be reached,
+/// or the call ends with an error status).
+pub async fn explain_rows(
     address: &str,
     template: proto::ExplainRequest,
-    instances: Vec<Vec<f64>>,
-) -> Result<Vec<Value>, Failure> {
-    let mut attributions = AttributionsClient::new(connect(address).await?);
-    let mut answers = Vec::with_capacity(instances.len());
-    for (line, instance) in instances.into_iter().enumerate() {
-        let request = proto::ExplainRequest {
-            instance,
-            request_id: format!("{}-{}", template.request_id, line + 1),
-            ..template.clone()
-        };
-        let e = attributions.explain(request).await?.into_inner();
-        let estimator =
-            proto::Estimator::try_from(e.estimator_used).map_or("UNKNOWN", |k| k.as_str_name());
-        answers.push(json!({
-            "request_id": e.request_id,
-            "model_id": e.model_id,
-            "version": e.version,
-            "value_full": e.value_full,
-            "value_empty": e.value_empty,
-            "attributions": e.attributions.iter().map(|a| json!({
-                "name": a.name, "value": a.value, "std_error": a.std_error,
-            })).collect::<Vec<_>>(),
-            "estimator": estimator,
-            "plan_reason": e.plan_reason,
-            "converged": e.converged,
-            "coalitions_evaluated": e.coalitions_evaluated,
-            "elapsed_us": e.elapsed_us,
-            "reasons": e.reasons.iter().map(|r| json!({
-                "name": r.name, "code": r.reason_code, "statement": r.statement, "weight": r.weight,
-            })).collect::<Vec<_>>(),
-        }));
+    input: &Path,
+    rows: Vec<InputRow>,
+    out: &mut (dyn std::io::Write + Send),
+    report: &mut (dyn std::io::Write + Send),
+    progress: &mut (dyn FnMut(Progress) + Send),
+) -> Result<Tally, Failure> {
+    let started = std::time::Instant::now();
+    let mut tally = Tally {
+        rows: rows.len(),
+        ..Tally::default()
+    };
+    let mut sent_lines = Vec::new();
+    let mut requests = Vec::new();
+    for row in rows {
+        match row.parsed {
+            Ok(Row { instance, label }) => {
+                requests.push(proto::ExplainRequest {
+                    instance,
+                    label: label.or(template.label),
+                    request_id: format!("{}-{}", template.request_id, row.line),
+                    ..template.clone()
+                });
+                sent_lines.push(row.line);
+            }
+            Err(why) => {
+                say(report, format!("{}:{}: {why}", input.display(), row.line))?;
+                tally.failed_lines.push(row.line);
+            }
+        }
     }
-    Ok(answers)
+    let mut attributions = AttributionsClient::new(connect(address).await?);
+    // The request stream is fed from a small channel, so only what the
+    // server's flow control lets through is encoded ahead.
+    let (feed, fed) = tokio::sync::mpsc::channel(64);
+    tokio::spawn(async move {
+        for request in requests {
+            if feed.send(request).await.is_err() {
+                break;
+            }
+        }
+    });
+    let mut answers = attributions
+        .explain_stream(tokio_stream::wrappers::ReceiverStream::new(fed))
+        .await?
+        .into_inner();
+    let mut done = tally.failed_lines.len();
+    while let Some(outcome) = answers.message().await? {
+        let line = usize::try_from(outcome.index)
+            .ok()
+            .and_then(|index| sent_lines.get(index).copied())
+            .ok_or_else(|| format!("the server answered an unknown request {}", outcome.index))?;
+        match outcome.outcome {
+            Some(proto::explain_outcome::Outcome::Explanation(explanation)) => {
+                writeln!(out, "{}", explanation_json(line, &explanation))?;
+                tally.explained += 1;
+            }
+            Some(proto::explain_outcome::Outcome::Error(error)) => {
+                say(
+                    report,
+                    format!(
+                        "{}:{line}: {}: {}",
+                        input.display(),
+                        error.code_name,
+                        error.message
+                    ),
+                )?;
+                tally.failed_lines.push(line);
+            }
+            None => {
+                say(
+                    report,
+                    format!(
+                        "{}:{line}: the server sent an empty answer",
+                        input.display()
+                    ),
+                )?;
+                tally.failed_lines.push(line);
+            }
+        }
+        done += 1;
+        progress(Progress {
+            done,
+            total: tally.rows,
+            elapsed: started.elapsed(),
+        });
+    }
+    out.flush()?;
+    tally.elapsed = started.elapsed();
+    Ok(tally)
+}
+
+/// One report line in one write, so a terminal's progress line is cleared
+/// once before it.
+fn say(report: &mut (dyn std::io::Write + Send), mut text: String) -> std::io::Result<()> {
+    text.push('\n');
+    report.write_all(text.as_bytes())
+}
+
+/// Rows for `apportion explain` from `path`, each with its line number,
+/// bad rows kept with the reason so the run can report them and go on.
+///
+/// JSON lines (`.jsonl`/`.json`): a line is an array of numbers (`null` =
+/// missing), or an object `{"instance": [...], "<label_field>": 1}`. CSV
+/// (anything else): a first line that is not numeric is the header; empty,
+/// `NA` and `NaN` cells are missing. With `label_field`, the label is that
+/// field of each object, or the CSV column of that name (which is then not
+/// part of the instance, and needs a header).
+pub fn read_rows(path: &Path, label_field: Option<&str>) -> Result<Vec<InputRow>, Failure> {
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| format!("{}: cannot read: {e}", path.display()))?;
+    let json_lines = matches!(
+        path.extension().and_then(|e| e.to_str()),
+        Some("jsonl" | "json")
+    );
+    let mut rows = Vec::new();
+    let mut label_column = None;
+    for (number, line) in text.lines().enumerate() {
+        if line.trim().is_empty() {
+            continue;
+        }
+        let parsed = if json_lines {
+            json_row(line, label_field)
+        } else {
+            let cells: Vec<&str> = line.split(',').map(str::trim).collect();
+            if number == 0 && cells.iter().any(|cell| cell_value(cell).is_err()) {
+                if let Some(name) = label_field {
+                    label_column =
+                        Some(cells.iter().position(|c| *c == name).ok_or_else(|| {
+                            format!(
+                                "{}:1: --label-column {name:?} is not in the header ({})",
+                                path.display(),
+                                cells.join(", ")
+                            )
+                        })?);
+                }
+                continue; // a header
+            }
+            if let (Some(name), None) = (label_field, label_column) {
+                return Err(format!(
+                    "{}:1: --label-column {name:?} needs a header line naming the columns",
+                    path.display()
+                )
+                .into());
+            }
+            csv_row(&cells, label_column, label_field.unwrap_or_default())
+        };
+        rows.push(InputRow {
+            line: number + 1,
+            parsed,
+        });
+    }
+    if rows.is_empty() {
+        return Err(format!("{}: no instances found", path.display()).into());
+    }
+    Ok(rows)
+}
+
+fn cell_value(cell: &str) -> Result<f64, String> {
+    match cell {
+        "" | "NA" | "NaN" | "nan" => Ok(f64::NAN),
+        number => number
+            .parse()
+            .map_err(|_| format!("{number:?} is not a number")),
+    }
+}
+
+fn csv_row(cells: &[&str], label_column: Option<usize>, label_name: &str) -> Result<Row, String> {
+    let mut instance = Vec::with_capacity(cells.len());
+    let mut label = None;
+    for (column, cell) in cells.iter().enumerate() {
+        let value = cell_value(cell).map_err(|why| format!("column {}: {why}", column + 1))?;
+        if Some(column) == label_column {
+            if value.is_nan() {
+                return Err(format!("the label column {label_name:?} is empty"));
+            }
+            label = Some(value);
+        } else {
+            instance.push(value);
+        }
+    }
+    if label_column.is_some_and(|column| column >= cells.len()) {
+        return Err(format!("has no value in the label column {label_name:?}"));
+    }
+    Ok(Row { instance, label })
+}
+
+fn json_row(line: &str, label_field: Option<&str>) -> Result<Row, String> {
+    let value: Value = serde_json::from_str(line).map_err(|e| format!("not JSON: {e}"))?;
+    let numbers = |array: &Value| -> Result<Vec<f64>, String> {
+        let Some(items) = array.as_array() else {
+            return Err("expected an array of numbers or null".into());
+        };
+        items
+            .iter()
+            .map(|item| match item {
+                Value::Null => Ok(f64::NAN),
+                other => other
+                    .as_f64()
+                    .ok_or_else(|| format!("{other} is not a number or null")),
+            })
+            .collect()
+    };
+    match (&value, label_field) {
+        (Value::Array(_), None) => Ok(Row {
+            instance: numbers(&value)?,
+            label: None,
+        }),
+        (Value::Array(_), Some(name)) => Err(format!(
+            "expected an object {{\"instance\": [...], \"{name}\": …}} (--label-column {name:?})"
+        )),
+        (Value::Object(fields), _) => {
+            let instance = numbers(fields.get("instance").ok_or("has no \"instance\" field")?)
+                .map_err(|why| format!("instance: {why}"))?;
+            let label = match label_field {
+                Some(name) => Some(
+                    fields
+                        .get(name)
+                        .and_then(Value::as_f64)
+                        .ok_or_else(|| format!("has no number in its label field {name:?}"))?,
+                ),
+                None => None,
+            };
+            Ok(Row { instance, label })
+        }
+        _ => Err("expected an array of numbers or an object with \"instance\"".into()),
+    }
 }
 
 /// Instances from `path`: JSON lines (`.jsonl`/`.json`: one array of
@@ -443,6 +743,54 @@ pub fn read_instances(path: &Path) -> Result<Vec<Vec<f64>>, Failure> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn rows_keep_their_line_numbers_labels_and_reasons() {
+        // Formats as documented on read_rows (common practice, no source).
+        let dir = tempfile::tempdir().unwrap();
+        let csv = dir.path().join("rows.csv");
+        std::fs::write(
+            &csv,
+            "income,paid,rent\n3000,1,0.3\n\n2500,x,0.2\n2400,0,\n",
+        )
+        .unwrap();
+        let rows = read_rows(&csv, Some("paid")).unwrap();
+        assert_eq!(rows.len(), 3);
+        assert_eq!(rows[0].line, 2);
+        let first = rows[0].parsed.as_ref().unwrap();
+        assert_eq!(
+            (first.instance.clone(), first.label),
+            (vec![3000.0, 0.3], Some(1.0))
+        );
+        assert_eq!(rows[1].line, 4);
+        assert!(rows[1].parsed.as_ref().unwrap_err().contains("column 2"));
+        assert!(rows[2].parsed.as_ref().unwrap().instance[1].is_nan());
+        let missing = read_rows(&csv, Some("label")).unwrap_err().to_string();
+        assert!(
+            missing.contains("\"label\" is not in the header"),
+            "{missing}"
+        );
+
+        let jsonl = dir.path().join("rows.jsonl");
+        std::fs::write(
+            &jsonl,
+            "{\"instance\": [1, null], \"paid\": 0}\n[1, 2]\n{\"instance\": [3, 4]}\n",
+        )
+        .unwrap();
+        let rows = read_rows(&jsonl, Some("paid")).unwrap();
+        assert_eq!(rows[0].parsed.as_ref().unwrap().label, Some(0.0));
+        assert!(
+            rows[1]
+                .parsed
+                .as_ref()
+                .unwrap_err()
+                .contains("--label-column")
+        );
+        assert!(rows[2].parsed.as_ref().unwrap_err().contains("\"paid\""));
+        let plain = read_rows(&jsonl, None).unwrap();
+        assert_eq!(plain[1].parsed.as_ref().unwrap().instance, vec![1.0, 2.0]);
+        assert_eq!(plain[2].parsed.as_ref().unwrap().label, None);
+    }
 
     #[test]
     fn csv_and_json_lines_read_alike_with_missing_values() {

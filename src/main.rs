@@ -59,7 +59,9 @@ enum Command {
         #[arg(long)]
         model_id: Option<String>,
     },
-    /// Explain instances from a CSV or JSON-lines file; one JSON object per instance.
+    /// Explain the rows of a CSV or JSON-lines file over one stream: each answer is printed as a
+    /// JSON line as it arrives, bad rows are reported on stderr with their line number, and a
+    /// summary ends the run. Exits non-zero if any row failed.
     Explain(ExplainArgs),
     /// Read a bearer token from standard input and print its digest, as a
     /// token file holds it (`DIGEST ROLE NAME` per line).
@@ -76,15 +78,21 @@ struct ExplainArgs {
     /// Model version; 0 is the latest.
     #[arg(long, default_value_t = 0)]
     version: u64,
-    /// Instances: `.jsonl`/`.json` (an array per line, null = missing) or CSV.
+    /// Instances: `.jsonl`/`.json` (an array per line, or an object with "instance"; null =
+    /// missing) or CSV (a header line is skipped).
     #[arg(long)]
     input: PathBuf,
+    /// Each row's label (for --target loss): the CSV column of this name (left out of the
+    /// instance), or this field of each JSON-lines object.
+    #[arg(long)]
+    label_column: Option<String>,
     /// marginal, fixed, independent, conditional_gaussian or conditional_neighbors.
     #[arg(long, default_value = "marginal")]
     removal: String,
     /// output, probability or loss (loss needs --label).
     #[arg(long, default_value = "output")]
     target: String,
+    /// The label of every row without its own (for --target loss).
     #[arg(long)]
     label: Option<f64>,
     /// shapley, banzhaf, leave_one_out, include_one, linear_fit or selection.
@@ -98,6 +106,19 @@ struct ExplainArgs {
     budget_ms: u32,
     #[arg(long, default_value_t = 0)]
     seed: u64,
+    /// Cap on coalition evaluations per row; 0 is the default.
+    #[arg(long, default_value_t = 0)]
+    max_evaluations: u64,
+    /// Largest acceptable std error; 0 is 1% of |v(all) - v(none)|.
+    #[arg(long, default_value_t = 0.0)]
+    tolerance: f64,
+    /// Reference values for --removal fixed, comma-separated, one per feature (default: the
+    /// background mean).
+    #[arg(long, value_delimiter = ',', num_args = 1..)]
+    fixed_values: Vec<f64>,
+    /// Principal reasons to list per row; 0 is 4.
+    #[arg(long, default_value_t = 0)]
+    max_reasons: u32,
 }
 
 /// Settings of `serve`. Each is taken from its flag, else its environment
@@ -149,6 +170,12 @@ struct ServeArgs {
     /// File of bearer-token digests and roles (`apportion hash-token` makes a digest) [default: none: every call is accepted].
     #[arg(long, env = "APPORTION_TOKENS_FILE")]
     tokens_file: Option<PathBuf>,
+    /// Most instances one ExplainBatch call may carry [default: 1024].
+    #[arg(long, env = "APPORTION_MAX_BATCH_INSTANCES")]
+    max_batch_instances: Option<usize>,
+    /// Most requests of one ExplainStream computed or waiting to be sent at once [default: 16].
+    #[arg(long, env = "APPORTION_MAX_STREAM_IN_FLIGHT")]
+    max_stream_in_flight: Option<usize>,
 }
 
 impl ServeArgs {
@@ -173,6 +200,8 @@ impl ServeArgs {
             max_draws: self.max_draws,
             max_coalition_rows: self.max_coalition_rows,
             tokens_file: self.tokens_file,
+            max_batch_instances: self.max_batch_instances,
+            max_stream_in_flight: self.max_stream_in_flight,
         };
         Ok(given.over(file).resolve()?)
     }
@@ -193,12 +222,7 @@ fn main() -> ExitCode {
         } => client::registration(&model, background.as_deref(), model_id.as_deref())
             .map_err(|e| e.to_string().into())
             .and_then(|request| run_client(client::register(&address, request))),
-        Command::Explain(args) => match explain_template(&args) {
-            Ok(template) => client::read_instances(&args.input)
-                .map_err(|e| e.to_string().into())
-                .and_then(|rows| run_client(client::explain(&args.address, template, rows))),
-            Err(err) => Err(err),
-        },
+        Command::Explain(args) => return explain(&args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -219,6 +243,81 @@ fn run_client(
         println!("{answer}");
     }
     Ok(())
+}
+
+/// `apportion explain`: streams the rows, prints answers as they arrive,
+/// shows progress when stderr is a terminal, ends with a summary on
+/// stderr; fails if any row failed.
+fn explain(args: &ExplainArgs) -> ExitCode {
+    use std::io::{IsTerminal, Write};
+    let run = || -> Result<client::Tally, Box<dyn std::error::Error>> {
+        let template = explain_template(args)?;
+        let rows = client::read_rows(&args.input, args.label_column.as_deref())
+            .map_err(|e| e.to_string())?;
+        let terminal = std::io::stderr().is_terminal();
+        let mut last_shown = std::time::Instant::now();
+        let mut show = move |progress: client::Progress| {
+            // A tenth of a second between redraws keeps the terminal cheap.
+            if terminal && last_shown.elapsed().as_millis() >= 100 {
+                last_shown = std::time::Instant::now();
+                eprint!("\r\x1b[2K{}", progress.line());
+            }
+        };
+        let runtime = tokio::runtime::Runtime::new()?;
+        let mut out = std::io::stdout();
+        let mut report = Reporter { terminal };
+        let tally = runtime
+            .block_on(client::explain_rows(
+                &args.address,
+                template,
+                &args.input,
+                rows,
+                &mut out,
+                &mut report,
+                &mut show,
+            ))
+            .map_err(|e| e.to_string())?;
+        if terminal {
+            eprint!("\r\x1b[2K");
+            let _ = std::io::stderr().flush();
+        }
+        Ok(tally)
+    };
+    match run() {
+        Ok(tally) => {
+            eprintln!("apportion: {}", tally.summary(&args.input));
+            if tally.failed_lines.is_empty() {
+                ExitCode::SUCCESS
+            } else {
+                ExitCode::FAILURE
+            }
+        }
+        Err(err) => {
+            eprintln!("apportion: {err}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// Bad-row reports on stderr; on a terminal each first clears the
+/// progress line it would otherwise be written over.
+struct Reporter {
+    terminal: bool,
+}
+
+impl std::io::Write for Reporter {
+    fn write(&mut self, bytes: &[u8]) -> std::io::Result<usize> {
+        let mut stderr = std::io::stderr();
+        if self.terminal {
+            stderr.write_all(b"\r\x1b[2K")?;
+        }
+        stderr.write_all(bytes)?;
+        Ok(bytes.len())
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        std::io::stderr().flush()
+    }
 }
 
 /// The request every instance shares, from the flags; an unknown choice
@@ -253,6 +352,10 @@ fn explain_template(
         })?,
         budget_ms: args.budget_ms,
         seed: args.seed,
+        max_evaluations: args.max_evaluations,
+        tolerance: args.tolerance,
+        fixed_values: args.fixed_values.clone(),
+        max_reasons: args.max_reasons,
         request_id: "cli".into(),
         ..Default::default()
     })

@@ -27,6 +27,13 @@ pub const COMPUTATIONS_CANCELLED: &str = "apportion_computations_cancelled_total
 pub const PANICS: &str = "apportion_panics_total";
 /// Model versions currently registered (gauge).
 pub const REGISTERED_MODELS: &str = "apportion_registered_models";
+/// ExplainStream requests read and not yet handed to the transport, over
+/// every open stream (gauge); each stream holds at most
+/// `max_stream_in_flight`.
+pub const STREAM_IN_FLIGHT: &str = "apportion_stream_requests_in_flight";
+/// Instances and stream requests answered, by rpc (counter; an item with
+/// an error counts too).
+pub const ITEMS: &str = "apportion_items_total";
 
 /// Bucket bounds of the latency histogram, in seconds: from well under a
 /// millisecond to the longest sensible budget.
@@ -118,6 +125,14 @@ fn describe_metrics() {
         "panics caught around computations and registrations, each answered INTERNAL"
     );
     metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
+    metrics::describe_gauge!(
+        STREAM_IN_FLIGHT,
+        "ExplainStream requests read and not yet handed to the transport"
+    );
+    metrics::describe_counter!(
+        ITEMS,
+        "ExplainBatch instances and ExplainStream requests answered, by rpc and code"
+    );
 }
 
 #[cfg(test)]

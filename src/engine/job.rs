@@ -235,9 +235,50 @@ pub struct Explanation {
 /// its field; nothing is computed.
 pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
     let prepared_at = Instant::now();
-    validate(model, &request)?;
+    let template = prepare_template(model, &request)?;
+    template.job_from(request.instance, None, request.seed, prepared_at)
+}
+
+/// Everything a request fixes except its instance: validated and planned
+/// once, then turned into one [`Job`] per instance by
+/// [`JobTemplate::job`]. A batch of instances shares it, and a single
+/// request goes through it too ([`prepare`]), so a batch's answers are
+/// the single answers, bit for bit, for the same seeds.
+#[derive(Clone)]
+pub struct JobTemplate {
+    model: Arc<PreparedModel>,
+    removal: ValidRemoval,
+    /// Whether the removal conditions on the present features, which then
+    /// may not be missing.
+    conditional: bool,
+    target: Target,
+    summary: Summary,
+    work: Work,
+    estimator: EstimatorKind,
+    plan_reason: String,
+    predicted: Duration,
+}
+
+impl std::fmt::Debug for JobTemplate {
+    fn fmt(&self, formatter: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        formatter
+            .debug_struct("JobTemplate")
+            .field("estimator", &self.estimator)
+            .field("predicted", &self.predicted)
+            .finish_non_exhaustive()
+    }
+}
+
+/// Validates every part of `request` but its instance (which is not read)
+/// and plans it. Every refusal names its field; nothing is computed.
+pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result<JobTemplate> {
+    validate(model, request)?;
     let removal_kind = request.removal.kind();
-    let removal = validate_removal(model, request.removal)?;
+    let conditional = matches!(
+        request.removal,
+        RemovalChoice::ConditionalGaussian { .. } | RemovalChoice::ConditionalNeighbors { .. }
+    );
+    let removal = validate_removal(model, request.removal.clone())?;
     let instances = match &request.target {
         Target::DatasetLoss { rows, .. } => rows.nrows(),
         _ => 1,
@@ -329,19 +370,71 @@ pub fn prepare(model: &Arc<PreparedModel>, request: Request) -> Result<Job> {
             tolerance: request.tolerance,
         },
     };
-    Ok(Job {
+    Ok(JobTemplate {
         model: model.clone(),
-        instance: request.instance,
         removal,
-        target: request.target,
+        conditional,
+        target: request.target.clone(),
         summary: request.summary,
-        seed: request.seed,
         work,
         estimator: chosen.estimator,
         plan_reason: chosen.reason,
         predicted: chosen.predicted,
-        prepared_at,
     })
+}
+
+impl JobTemplate {
+    /// The job for one instance: only the instance (and, for LOSS, a label
+    /// in place of the template's) is validated here. `label` must be
+    /// `None` for any other target.
+    pub fn job(&self, instance: Vec<f64>, label: Option<f64>, seed: u64) -> Result<Job> {
+        self.job_from(instance, label, seed, Instant::now())
+    }
+
+    pub fn estimator(&self) -> EstimatorKind {
+        self.estimator
+    }
+
+    /// Predicted computing time of one instance.
+    pub fn predicted(&self) -> Duration {
+        self.predicted
+    }
+
+    fn job_from(
+        &self,
+        instance: Vec<f64>,
+        label: Option<f64>,
+        seed: u64,
+        prepared_at: Instant,
+    ) -> Result<Job> {
+        validate_instance(&self.model, &instance, self.conditional)?;
+        let target = match (&self.target, label) {
+            (_, None) => self.target.clone(),
+            (Target::Loss { .. }, Some(label)) => {
+                check_label("label", label, self.model.model().link())?;
+                Target::Loss { label }
+            }
+            (_, Some(_)) => {
+                return Err(EngineError::new(
+                    "label",
+                    "is read by TARGET_LOSS only; leave it unset or choose TARGET_LOSS",
+                ));
+            }
+        };
+        Ok(Job {
+            model: self.model.clone(),
+            instance,
+            removal: self.removal.clone(),
+            target,
+            summary: self.summary,
+            seed,
+            work: self.work.clone(),
+            estimator: self.estimator,
+            plan_reason: self.plan_reason.clone(),
+            predicted: self.predicted,
+            prepared_at,
+        })
+    }
 }
 
 impl Job {
@@ -608,25 +701,19 @@ struct Counts {
     cache_hits: u64,
 }
 
-/// Checks that do not depend on the removal; every refusal names its field.
-fn validate(model: &PreparedModel, request: &Request) -> Result<()> {
+/// Checks of one instance: its length, and missing values only where the
+/// model takes them and the removal does not condition on them.
+fn validate_instance(model: &PreparedModel, instance: &[f64], conditional: bool) -> Result<()> {
     let inputs = model.model().inputs();
     let players = model.players();
-    if request.instance.len() != inputs {
+    if instance.len() != inputs {
         return Err(EngineError::new(
             "instance",
-            format!(
-                "has {} values; the model takes {inputs}",
-                request.instance.len()
-            ),
+            format!("has {} values; the model takes {inputs}", instance.len()),
         ));
     }
-    let conditional = matches!(
-        request.removal,
-        RemovalChoice::ConditionalGaussian { .. } | RemovalChoice::ConditionalNeighbors { .. }
-    );
     let missing_ok = model.model().accepts_missing() && !conditional;
-    for (j, x) in request.instance.iter().enumerate() {
+    for (j, x) in instance.iter().enumerate() {
         if x.is_infinite() || (x.is_nan() && !missing_ok) {
             let why = if x.is_infinite() {
                 "is infinite".to_string()
@@ -648,6 +735,13 @@ fn validate(model: &PreparedModel, request: &Request) -> Result<()> {
             ));
         }
     }
+    Ok(())
+}
+
+/// Checks of everything but the instance and the removal's own
+/// parameters; every refusal names its field.
+fn validate(model: &PreparedModel, request: &Request) -> Result<()> {
+    let inputs = model.model().inputs();
     let link = model.model().link();
     match &request.target {
         Target::Probability if link != Link::Logistic => {

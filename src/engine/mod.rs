@@ -27,7 +27,7 @@ pub use coalition::{Coalition, MAX_PLAYERS};
 pub use error::{EngineError, ErrorKind, Result};
 pub use estimate::{Estimate, EstimatorKind, Stopping};
 pub use game::{CachedGame, FnGame, Game, ModelGame};
-pub use job::{Explanation, Job, RemovalChoice, Request, prepare};
+pub use job::{Explanation, Job, JobTemplate, RemovalChoice, Request, prepare, prepare_template};
 pub use model::{LinearForm, Link, Model, Structure};
 pub use players::Players;
 pub use prepared::PreparedModel;

@@ -1,12 +1,18 @@
 //! The Attributions service: check the request against the server's
 //! maxima, convert it, prepare a job against the registered model, run it
 //! where the call arrives or on the compute pool (cancelled if the call goes
-//! away first), and convert the answer back.
+//! away first), and convert the answer back. ExplainBatch plans one shared
+//! request for many instances; ExplainStream answers a stream of requests
+//! with bounded work in flight per stream.
 
+use std::pin::Pin;
 use std::sync::Arc;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
-use tonic::{Request, Response, Status};
+use tokio::sync::mpsc;
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_stream::{Stream, StreamExt};
+use tonic::{Request, Response, Status, Streaming};
 
 use super::auth::Access;
 use super::convert;
@@ -15,7 +21,8 @@ use super::pool::guarded;
 use super::proto;
 use super::proto::attributions_server::Attributions;
 use super::server::{Limits, Shared, observe};
-use super::status::ServiceError;
+use super::status::{ServiceError, code_label};
+use super::stream::{Place, Room};
 use crate::engine::{self, CancelFlag, ErrorKind};
 use crate::telemetry;
 
@@ -30,60 +37,314 @@ impl AttributionsService {
         request: Request<proto::ExplainRequest>,
     ) -> Result<proto::Explanation, ServiceError> {
         let arrival = Instant::now();
+        let timeout = grpc_timeout(request.metadata());
+        explain_one(&self.shared, request.into_inner(), arrival, timeout).await
+    }
+
+    /// Validates and plans the shared request once, then computes the
+    /// instances on the compute pool in as many chunks as it has threads;
+    /// an instance that fails gets its error in its item.
+    async fn explain_batch(
+        &self,
+        request: Request<proto::ExplainBatchRequest>,
+    ) -> Result<proto::ExplainBatchResponse, ServiceError> {
+        let arrival = Instant::now();
         let shared = &self.shared;
         let timeout = grpc_timeout(request.metadata());
-        let message = request.into_inner();
+        let batch = request.into_inner();
+        let Some(shape) = batch.request else {
+            return Err(ServiceError::invalid(
+                "request",
+                "is required: the request every instance shares (model_id, removal, target, …)",
+            ));
+        };
+        if !shape.instance.is_empty() {
+            return Err(ServiceError::invalid(
+                "request.instance",
+                "must be empty in a batch; give each instance in `instances`",
+            ));
+        }
+        if batch.instances.is_empty() {
+            return Err(ServiceError::invalid(
+                "instances",
+                "is empty; give at least one instance",
+            ));
+        }
+        if batch.instances.len() > shared.limits.batch_instances {
+            return Err(ServiceError::invalid(
+                "instances",
+                format!(
+                    "{} instances are over this server's maximum of {}; split the batch",
+                    batch.instances.len(),
+                    shared.limits.batch_instances
+                ),
+            ));
+        }
         let budget = effective_budget(
-            message.budget_ms,
+            shape.budget_ms,
             shared.default_budget,
             timeout,
             shared.deadline_margin,
         );
-        shared.limits.check(&message)?;
-        let mut request = convert::explain_request(&message, budget)?;
-        request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
-        request.max_coalition_rows = shared.limits.coalition_rows;
-        let entry = shared.registry.get(&message.model_id, message.version)?;
-        let job = engine::prepare(entry.prepared(), request)?;
-        // Work that cannot start before the deadline (or, without one, within
-        // the budget) is refused rather than queued.
-        let admit_by = arrival
-            + match timeout {
-                Some(timeout) => timeout.saturating_sub(shared.deadline_margin),
-                None => budget,
-            };
-        let deadline = arrival + budget;
-        // Work of a few microseconds costs less than the handoff to a
-        // compute thread.
-        let answer = if job.runs_inline() {
-            guarded("computation", || job.run(deadline))??
-        } else {
-            // Dropped with this future when the client cancels or the call's
-            // deadline passes: the computation then stops at its next check
-            // and frees its compute thread.
-            let cancel = CancelOnDrop(CancelFlag::new());
+        shared.limits.check(&shape)?;
+        // TARGET_LOSS may take its label from each instance: the shared
+        // request is then checked with the first one given, and each
+        // instance's own label replaces it in its job.
+        let mut checked = shape.clone();
+        let labels_per_instance =
+            shape.target == proto::Target::Loss as i32 && shape.label.is_none();
+        if labels_per_instance {
+            checked.label = batch.instances.iter().find_map(|item| item.label);
+            if checked.label.is_none() {
+                return Err(ServiceError::invalid(
+                    "label",
+                    "is required for TARGET_LOSS: give it in the shared request or in each instance",
+                ));
+            }
+        }
+        let mut engine_request = convert::explain_request(&checked, budget)?;
+        engine_request.max_evaluations = engine_request
+            .max_evaluations
+            .min(shared.limits.evaluations);
+        engine_request.max_coalition_rows = shared.limits.coalition_rows;
+        let entry = shared.registry.get(&shape.model_id, shape.version)?;
+        let template = Arc::new(engine::prepare_template(entry.prepared(), &engine_request)?);
+        // Each instance gets its budget from when it starts; the call's
+        // deadline (less the margin) bounds them all and the admission.
+        let call_deadline = timeout.map(|t| arrival + t.saturating_sub(shared.deadline_margin));
+        let admit_by = call_deadline.unwrap_or(arrival + budget);
+        let count = batch.instances.len();
+        let chunk_size = count.div_ceil(shared.pool.threads().min(count));
+        let cancel = CancelOnDrop(CancelFlag::new());
+        let mut chunks = Vec::new();
+        let mut instances = batch.instances.into_iter().enumerate().peekable();
+        while instances.peek().is_some() {
+            let chunk: Vec<(usize, proto::BatchInstance)> =
+                instances.by_ref().take(chunk_size).collect();
+            let indices: Vec<usize> = chunk.iter().map(|(index, _)| *index).collect();
+            let template = template.clone();
             let flag = cancel.0.clone();
-            let answer = shared
-                .pool
-                .run(admit_by, move || {
-                    let result = job.run_cancellable(deadline, flag);
-                    if let Err(error) = &result
-                        && error.kind == ErrorKind::Cancelled
-                    {
-                        metrics::counter!(telemetry::COMPUTATIONS_CANCELLED).increment(1);
+            let work = move || {
+                chunk
+                    .into_iter()
+                    .map(|(index, item)| {
+                        let label = if labels_per_instance {
+                            item.label.or(checked.label)
+                        } else {
+                            item.label
+                        };
+                        let seed = item.seed.unwrap_or(shape.seed);
+                        let result = template
+                            .job(item.instance, label, seed)
+                            .and_then(|job| {
+                                let mut deadline = Instant::now() + budget;
+                                if let Some(call) = call_deadline {
+                                    deadline = deadline.min(call);
+                                }
+                                counted(job.run_cancellable(deadline, flag.clone()))
+                            })
+                            .map(|answer| (answer, seed));
+                        (index, item.request_id, result)
+                    })
+                    .collect::<Vec<_>>()
+            };
+            let pool = shared.pool.clone();
+            chunks.push((
+                indices,
+                tokio::spawn(async move { pool.run(admit_by, work).await }),
+            ));
+        }
+        let mut items = Vec::with_capacity(count);
+        for (indices, chunk) in chunks {
+            let computed = chunk
+                .await
+                .map_err(|e| ServiceError::Internal(format!("a batch chunk failed: {e}")))?;
+            match computed {
+                Ok(answers) => {
+                    for (index, request_id, result) in answers {
+                        let request_id = if request_id.is_empty() {
+                            shape.request_id.clone()
+                        } else {
+                            request_id
+                        };
+                        let result = match result {
+                            Ok((answer, seed)) => {
+                                record(&answer);
+                                let echo = convert::Echo {
+                                    request_id: &request_id,
+                                    seed,
+                                    request: &shape,
+                                };
+                                Ok(convert::explanation_echoing(&entry, &echo, &answer, budget))
+                            }
+                            Err(error) => Err(ServiceError::from(error)),
+                        };
+                        items.push(item(request_id, index as u64, result, "ExplainBatch"));
                     }
-                    result
-                })
-                .await??;
-            drop(cancel);
-            answer
-        };
-        metrics::histogram!(telemetry::EXPLAIN_SECONDS).record(answer.elapsed.as_secs_f64());
-        metrics::counter!(telemetry::COALITIONS_EVALUATED).increment(answer.coalitions_evaluated);
-        metrics::counter!(telemetry::MODEL_ROWS_EVALUATED).increment(answer.model_rows_evaluated);
-        metrics::counter!(telemetry::CACHE_HITS).increment(answer.cache_hits);
-        Ok(convert::explanation(&entry, &message, &answer, budget))
+                }
+                // A chunk that could not start in time: its instances say
+                // so, the others keep their answers.
+                Err(refused) => {
+                    let status = super::status::item_error(&refused);
+                    for index in indices {
+                        let message = proto::ExplainOutcome {
+                            request_id: shape.request_id.clone(),
+                            index: index as u64,
+                            outcome: Some(proto::explain_outcome::Outcome::Error(status.clone())),
+                        };
+                        count_item("ExplainBatch", &message);
+                        items.push(message);
+                    }
+                }
+            }
+        }
+        drop(cancel);
+        items.sort_by_key(|item| item.index);
+        Ok(proto::ExplainBatchResponse { items })
     }
+}
+
+/// One Explain: check the request against the server's maxima, convert it,
+/// prepare a job and run it where the call arrives or on the compute pool
+/// (cancelled if this future is dropped first). `timeout` is what is left
+/// of the call's deadline at `arrival`.
+async fn explain_one(
+    shared: &Shared,
+    message: proto::ExplainRequest,
+    arrival: Instant,
+    timeout: Option<Duration>,
+) -> Result<proto::Explanation, ServiceError> {
+    let budget = effective_budget(
+        message.budget_ms,
+        shared.default_budget,
+        timeout,
+        shared.deadline_margin,
+    );
+    shared.limits.check(&message)?;
+    let mut request = convert::explain_request(&message, budget)?;
+    request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
+    request.max_coalition_rows = shared.limits.coalition_rows;
+    let entry = shared.registry.get(&message.model_id, message.version)?;
+    let job = engine::prepare(entry.prepared(), request)?;
+    // Work that cannot start before the deadline (or, without one, within
+    // the budget) is refused rather than queued.
+    let admit_by = arrival
+        + match timeout {
+            Some(timeout) => timeout.saturating_sub(shared.deadline_margin),
+            None => budget,
+        };
+    let deadline = arrival + budget;
+    // Work of a few microseconds costs less than the handoff to a
+    // compute thread.
+    let answer = if job.runs_inline() {
+        guarded("computation", || job.run(deadline))??
+    } else {
+        // Dropped with this future when the client cancels or the call's
+        // deadline passes: the computation then stops at its next check
+        // and frees its compute thread.
+        let cancel = CancelOnDrop(CancelFlag::new());
+        let flag = cancel.0.clone();
+        let answer = shared
+            .pool
+            .run(admit_by, move || {
+                counted(job.run_cancellable(deadline, flag))
+            })
+            .await??;
+        drop(cancel);
+        answer
+    };
+    record(&answer);
+    Ok(convert::explanation(&entry, &message, &answer, budget))
+}
+
+/// Counts a computation its call's cancellation stopped.
+fn counted(result: engine::Result<engine::Explanation>) -> engine::Result<engine::Explanation> {
+    if let Err(error) = &result
+        && error.kind == ErrorKind::Cancelled
+    {
+        metrics::counter!(telemetry::COMPUTATIONS_CANCELLED).increment(1);
+    }
+    result
+}
+
+/// The metrics of one computed answer.
+fn record(answer: &engine::Explanation) {
+    metrics::histogram!(telemetry::EXPLAIN_SECONDS).record(answer.elapsed.as_secs_f64());
+    metrics::counter!(telemetry::COALITIONS_EVALUATED).increment(answer.coalitions_evaluated);
+    metrics::counter!(telemetry::MODEL_ROWS_EVALUATED).increment(answer.model_rows_evaluated);
+    metrics::counter!(telemetry::CACHE_HITS).increment(answer.cache_hits);
+}
+
+/// An item of a batch or a stream, counted by rpc and code.
+fn item(
+    request_id: String,
+    index: u64,
+    result: Result<proto::Explanation, ServiceError>,
+    rpc: &'static str,
+) -> proto::ExplainOutcome {
+    let outcome = convert::outcome(request_id, index, result);
+    count_item(rpc, &outcome);
+    outcome
+}
+
+fn count_item(rpc: &'static str, outcome: &proto::ExplainOutcome) {
+    let code = match &outcome.outcome {
+        Some(proto::explain_outcome::Outcome::Error(error)) => tonic::Code::from(error.code),
+        _ => tonic::Code::Ok,
+    };
+    metrics::counter!(telemetry::ITEMS, "rpc" => rpc, "code" => code_label(code)).increment(1);
+}
+
+/// Reads a stream's requests while it has room (see [`super::stream`]),
+/// explains each in its own task, and queues the answers for the
+/// transport; stops reading when the client stops sending or goes away.
+fn serve_stream(
+    shared: Arc<Shared>,
+    mut inbound: Streaming<proto::ExplainRequest>,
+    timeout: Option<Duration>,
+) -> ReceiverStream<Result<(proto::ExplainOutcome, Place), Status>> {
+    let opened = Instant::now();
+    let room = Room::new(shared.stream_in_flight, shared.streams.clone());
+    // Never full: at most stream_in_flight answers exist at once, each
+    // holding a place, and one error ends the stream.
+    let (answers, queued) = mpsc::channel(shared.stream_in_flight + 1);
+    tokio::spawn(async move {
+        let mut index = 0u64;
+        loop {
+            let Some(mut place) = room.place().await else {
+                break;
+            };
+            let next = tokio::select! {
+                next = inbound.message() => next,
+                () = answers.closed() => break,
+            };
+            let message = match next {
+                Ok(Some(message)) => message,
+                Ok(None) => break,
+                Err(status) => {
+                    let _ = answers.send(Err(status)).await;
+                    break;
+                }
+            };
+            place.enter();
+            let answers = answers.clone();
+            let shared = shared.clone();
+            let left = timeout.map(|t| t.saturating_sub(opened.elapsed()));
+            tokio::spawn(async move {
+                let request_id = message.request_id.clone();
+                // Dropping the computation when the client goes away
+                // cancels it (CancelOnDrop inside).
+                let result = tokio::select! {
+                    result = explain_one(&shared, message, Instant::now(), left) => result,
+                    () = answers.closed() => return,
+                };
+                let outcome = item(request_id, index, result, "ExplainStream");
+                let _ = answers.send(Ok((outcome, place))).await;
+            });
+            index += 1;
+        }
+    });
+    ReceiverStream::new(queued)
 }
 
 /// Sets its flag when dropped, so dropping the call's future cancels its
@@ -137,6 +398,48 @@ impl Limits {
 
 #[tonic::async_trait]
 impl Attributions for AttributionsService {
+    type ExplainStreamStream =
+        Pin<Box<dyn Stream<Item = Result<proto::ExplainOutcome, Status>> + Send + 'static>>;
+
+    async fn explain_batch(
+        &self,
+        request: Request<proto::ExplainBatchRequest>,
+    ) -> Result<Response<proto::ExplainBatchResponse>, Status> {
+        let result = match self.shared.authorize(request.metadata(), Access::Explain) {
+            Ok(()) => AttributionsService::explain_batch(self, request)
+                .await
+                .map(Response::new)
+                .map_err(Status::from),
+            Err(refused) => Err(refused),
+        };
+        observe("ExplainBatch", &result);
+        result
+    }
+
+    async fn explain_stream(
+        &self,
+        request: Request<Streaming<proto::ExplainRequest>>,
+    ) -> Result<Response<Self::ExplainStreamStream>, Status> {
+        if let Err(refused) = self.shared.authorize(request.metadata(), Access::Explain) {
+            let result = Err(refused);
+            observe("ExplainStream", &result);
+            return result;
+        }
+        let timeout = grpc_timeout(request.metadata());
+        let queued = serve_stream(self.shared.clone(), request.into_inner(), timeout);
+        // The place is given back as the answer leaves for the transport.
+        let answers = queued.map(|answer| {
+            answer.map(|(outcome, place)| {
+                place.sent();
+                outcome
+            })
+        });
+        let result: Result<Response<Self::ExplainStreamStream>, Status> =
+            Ok(Response::new(Box::pin(answers)));
+        observe("ExplainStream", &result);
+        result
+    }
+
     async fn explain(
         &self,
         request: Request<proto::ExplainRequest>,

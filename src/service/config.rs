@@ -17,6 +17,8 @@
 //! max_evaluations = 4194304
 //! max_draws = 4096
 //! max_coalition_rows = 1048576
+//! max_batch_instances = 1024          # instances in one ExplainBatch call
+//! max_stream_in_flight = 16           # requests of one ExplainStream computed or unsent
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -52,6 +54,8 @@ pub struct ConfigLayer {
     pub max_draws: Option<u32>,
     pub max_coalition_rows: Option<usize>,
     pub tokens_file: Option<PathBuf>,
+    pub max_batch_instances: Option<usize>,
+    pub max_stream_in_flight: Option<usize>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -107,6 +111,8 @@ impl ConfigLayer {
             max_draws: self.max_draws.or(lower.max_draws),
             max_coalition_rows: self.max_coalition_rows.or(lower.max_coalition_rows),
             tokens_file: self.tokens_file.or(lower.tokens_file),
+            max_batch_instances: self.max_batch_instances.or(lower.max_batch_instances),
+            max_stream_in_flight: self.max_stream_in_flight.or(lower.max_stream_in_flight),
         }
     }
 
@@ -159,6 +165,15 @@ impl ConfigLayer {
         if self.max_coalition_rows == Some(0) {
             return Err(invalid("max_coalition_rows", "must be at least 1".into()));
         }
+        if self.max_batch_instances == Some(0) {
+            return Err(invalid("max_batch_instances", "must be at least 1".into()));
+        }
+        if self.max_stream_in_flight == Some(0) {
+            return Err(invalid(
+                "max_stream_in_flight",
+                "must be at least 1 (a stream with no room would never be read)".into(),
+            ));
+        }
         if let Some(filter) = &self.log_filter
             && let Err(error) = tracing_subscriber::EnvFilter::try_new(filter)
         {
@@ -186,6 +201,12 @@ impl ConfigLayer {
                 .max_coalition_rows
                 .unwrap_or(defaults.max_coalition_rows),
             tokens_file: self.tokens_file.or(defaults.tokens_file),
+            max_batch_instances: self
+                .max_batch_instances
+                .unwrap_or(defaults.max_batch_instances),
+            max_stream_in_flight: self
+                .max_stream_in_flight
+                .unwrap_or(defaults.max_stream_in_flight),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -222,6 +243,8 @@ impl Config {
             max_draws: Some(self.max_draws),
             max_coalition_rows: Some(self.max_coalition_rows),
             tokens_file: self.tokens_file.clone(),
+            max_batch_instances: Some(self.max_batch_instances),
+            max_stream_in_flight: Some(self.max_stream_in_flight),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -270,6 +293,8 @@ mod tests {
             max_message_mib: Some(8),
             max_budget_ms: Some(5000),
             max_draws: Some(64),
+            max_batch_instances: Some(10),
+            max_stream_in_flight: Some(3),
             ..ConfigLayer::default()
         }
         .resolve()
@@ -283,6 +308,8 @@ mod tests {
         assert_eq!(again.max_message_bytes, 8 * 1024 * 1024);
         assert_eq!(again.max_budget, Duration::from_secs(5));
         assert_eq!(again.max_draws, 64);
+        assert_eq!(again.max_batch_instances, 10);
+        assert_eq!(again.max_stream_in_flight, 3);
     }
 
     #[test]
@@ -354,6 +381,20 @@ mod tests {
                     ..ConfigLayer::default()
                 },
                 "max_coalition_rows",
+            ),
+            (
+                ConfigLayer {
+                    max_batch_instances: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "max_batch_instances",
+            ),
+            (
+                ConfigLayer {
+                    max_stream_in_flight: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "max_stream_in_flight",
             ),
             (
                 ConfigLayer {

@@ -739,11 +739,55 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
     Ok(engine)
 }
 
+/// One item of a batch or a stream: the answer, or the error its unary
+/// call would have returned.
+pub fn outcome(
+    request_id: String,
+    index: u64,
+    result: std::result::Result<proto::Explanation, ServiceError>,
+) -> proto::ExplainOutcome {
+    use proto::explain_outcome::Outcome;
+    proto::ExplainOutcome {
+        request_id,
+        index,
+        outcome: Some(match result {
+            Ok(explanation) => Outcome::Explanation(explanation),
+            Err(error) => Outcome::Error(super::status::item_error(&error)),
+        }),
+    }
+}
+
 /// The answer on the wire: one attribution per player in player order, the
 /// principal reasons, and the accounting.
 pub fn explanation(
     entry: &Entry,
     request: &proto::ExplainRequest,
+    answer: &job::Explanation,
+    budget: Duration,
+) -> proto::Explanation {
+    let echo = Echo {
+        request_id: &request.request_id,
+        seed: request.seed,
+        request,
+    };
+    explanation_echoing(entry, &echo, answer, budget)
+}
+
+/// What an answer repeats from its request, which in a batch differs per
+/// instance.
+#[derive(Debug, Clone, Copy)]
+pub struct Echo<'a> {
+    pub request_id: &'a str,
+    pub seed: u64,
+    /// The request whose reason options (direction, space, number, level)
+    /// and target apply.
+    pub request: &'a proto::ExplainRequest,
+}
+
+/// [`explanation`], with the echoed fields given one by one.
+pub fn explanation_echoing(
+    entry: &Entry,
+    echo: &Echo<'_>,
     answer: &job::Explanation,
     budget: Duration,
 ) -> proto::Explanation {
@@ -759,7 +803,7 @@ pub fn explanation(
             std_error: *std_error,
         })
         .collect();
-    let listed = listed_reasons(entry, request, estimate);
+    let listed = listed_reasons(entry, echo.request, echo.seed, estimate);
     let reasons = listed
         .reasons
         .reasons
@@ -793,7 +837,7 @@ pub fn explanation(
     proto::Explanation {
         model_id: info.model_id.clone(),
         version: info.version,
-        request_id: request.request_id.clone(),
+        request_id: echo.request_id.to_string(),
         value_full: estimate.value_full,
         value_empty: estimate.value_empty,
         attributions,
@@ -802,7 +846,7 @@ pub fn explanation(
         model_rows_evaluated: answer.model_rows_evaluated,
         converged: estimate.converged,
         elapsed_us: u64::try_from(answer.elapsed.as_micros()).unwrap_or(u64::MAX),
-        seed: request.seed,
+        seed: echo.seed,
         plan_reason: answer.plan_reason.clone(),
         cache_hits: answer.cache_hits,
         efficiency_gap: estimate.efficiency_gap(),
@@ -837,6 +881,7 @@ struct Listed {
 fn listed_reasons(
     entry: &Entry,
     request: &proto::ExplainRequest,
+    seed: u64,
     estimate: &crate::engine::Estimate,
 ) -> Listed {
     let mut decision = entry.info().decision.unwrap_or_default();
@@ -914,7 +959,7 @@ fn listed_reasons(
         sign,
         limit,
         level,
-        request.seed,
+        seed,
     );
     let outcome = match (space, decision.space) {
         (Some(space), Some(decided)) if space == decided => decision.outcome(estimate.value_full),

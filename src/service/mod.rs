@@ -15,11 +15,13 @@ pub mod pool;
 mod registry_api;
 pub mod server;
 pub mod status;
+pub mod stream;
 
 pub use config::{ConfigError, ConfigLayer};
 pub use pool::ComputePool;
 pub use server::{Config, State, run};
 pub use status::{ServiceError, status_of};
+pub use stream::StreamStats;
 
 /// Types and client/server stubs generated from
 /// `proto/apportion/v1/apportion.proto`.

@@ -43,13 +43,20 @@ pub(super) fn guarded<T>(what: &'static str, work: impl FnOnce() -> T) -> Result
 #[derive(Debug, Clone)]
 pub struct ComputePool {
     permits: Arc<Semaphore>,
+    threads: usize,
 }
 
 impl ComputePool {
     pub fn new(threads: usize) -> ComputePool {
         ComputePool {
             permits: Arc::new(Semaphore::new(threads.max(1))),
+            threads: threads.max(1),
         }
+    }
+
+    /// How many computations may run at once.
+    pub fn threads(&self) -> usize {
+        self.threads
     }
 
     /// Runs `work` once a permit is free; refuses with RESOURCE_EXHAUSTED

@@ -23,6 +23,7 @@ use super::proto::diagnostics_server::DiagnosticsServer;
 use super::proto::registry_server::RegistryServer;
 use super::registry_api::{RegistryService, set_registered_models};
 use super::status::{ServiceError, code_label, transport_status};
+use super::stream::StreamStats;
 use crate::registry::{LoadProblem, Registry};
 use crate::telemetry::{self, LogFormat};
 
@@ -65,6 +66,13 @@ pub struct Config {
     pub max_coalition_rows: usize,
     /// The token file (digests and roles); `None`: no authentication.
     pub tokens_file: Option<PathBuf>,
+    /// Most instances one ExplainBatch call may carry: the call's request,
+    /// its answers and their jobs are held in memory at once.
+    pub max_batch_instances: usize,
+    /// Most requests of one ExplainStream computed or waiting to be sent
+    /// at once; the server reads the stream's next request only below it,
+    /// so a slow reader holds at most this many answers in the server.
+    pub max_stream_in_flight: usize,
 }
 
 impl Default for Config {
@@ -84,6 +92,8 @@ impl Default for Config {
             max_draws: crate::engine::job::MAX_DRAWS as u32,
             max_coalition_rows: crate::engine::job::DEFAULT_MAX_COALITION_ROWS,
             tokens_file: None,
+            max_batch_instances: 1024,
+            max_stream_in_flight: 16,
         }
     }
 }
@@ -97,6 +107,11 @@ pub(super) struct Shared {
     pub(super) deadline_margin: Duration,
     /// What one Explain call may ask for.
     pub(super) limits: Limits,
+    /// Most requests of one ExplainStream in flight at once.
+    pub(super) stream_in_flight: usize,
+    /// What every ExplainStream has read and sent, for the flow-control
+    /// gauge and for tests that watch it.
+    pub(super) streams: Arc<StreamStats>,
     /// The bearer tokens calls must carry; `None`: calls are not checked.
     pub(super) tokens: Option<Tokens>,
 }
@@ -119,6 +134,7 @@ pub(super) struct Limits {
     pub(super) evaluations: u64,
     pub(super) draws: u32,
     pub(super) coalition_rows: usize,
+    pub(super) batch_instances: usize,
 }
 
 /// The state `run` serves: the registry and the settings the handlers need.
@@ -165,7 +181,10 @@ impl State {
                     evaluations: config.max_evaluations,
                     draws: config.max_draws,
                     coalition_rows: config.max_coalition_rows,
+                    batch_instances: config.max_batch_instances,
                 },
+                stream_in_flight: config.max_stream_in_flight.max(1),
+                streams: Arc::new(StreamStats::default()),
                 tokens: None,
             }),
             max_message_bytes: config.max_message_bytes,
@@ -174,6 +193,12 @@ impl State {
 
     pub fn registry(&self) -> &Arc<Registry> {
         &self.shared.registry
+    }
+
+    /// The ExplainStream counters of this server: requests read, answers
+    /// handed to the transport, and the most one stream had in flight.
+    pub fn stream_stats(&self) -> &Arc<StreamStats> {
+        &self.shared.streams
     }
 }
 

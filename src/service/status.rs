@@ -138,6 +138,17 @@ impl From<ServiceError> for Status {
     }
 }
 
+/// The error of one batch instance or stream request, carried in its
+/// item: the same code and message its unary call would have had.
+pub fn item_error(error: &ServiceError) -> super::proto::ItemError {
+    let status = status_of(error);
+    super::proto::ItemError {
+        code: status.code() as i32,
+        code_name: code_label(status.code()).to_string(),
+        message: status.message().to_string(),
+    }
+}
+
 /// The status code as a metric label (`OK`, `INVALID_ARGUMENT`, …), spelled
 /// as in the gRPC status code list.
 pub fn code_label(code: Code) -> &'static str {

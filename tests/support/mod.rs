@@ -11,7 +11,7 @@ use apportion::registry::Registry;
 use apportion::service::proto::attributions_client::AttributionsClient;
 use apportion::service::proto::diagnostics_client::DiagnosticsClient;
 use apportion::service::proto::registry_client::RegistryClient;
-use apportion::service::{Config, ServiceError, State};
+use apportion::service::{Config, ServiceError, State, StreamStats};
 use tokio::sync::oneshot;
 use tokio::task::JoinHandle;
 use tonic::transport::Channel;
@@ -20,6 +20,8 @@ pub struct TestServer {
     pub address: SocketAddr,
     /// The server's own registry, for in-process comparisons.
     pub registry: Arc<Registry>,
+    /// What the server's ExplainStreams have read and sent.
+    pub streams: Arc<StreamStats>,
     pub channel: Channel,
     stop: oneshot::Sender<()>,
     task: JoinHandle<Result<(), ServiceError>>,
@@ -42,6 +44,7 @@ pub async fn start_with(config: Config) -> TestServer {
         "unexpected load problems: {problems:?}"
     );
     let registry = state.registry().clone();
+    let streams = state.stream_stats().clone();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
         .await
         .expect("bind");
@@ -58,6 +61,7 @@ pub async fn start_with(config: Config) -> TestServer {
     TestServer {
         address,
         registry,
+        streams,
         channel,
         stop,
         task,

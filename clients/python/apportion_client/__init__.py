@@ -28,7 +28,7 @@ import grpc
 from .v1 import apportion_pb2 as pb
 from .v1 import apportion_pb2_grpc as rpc
 
-__all__ = ["Attribution", "Client", "Explanation", "ModelInfo", "Reason"]
+__all__ = ["Attribution", "Client", "Explanation", "ItemError", "ModelInfo", "Reason"]
 
 
 @dataclass(frozen=True)
@@ -114,6 +114,14 @@ class Explanation:
     def values(self) -> dict[str, float]:
         """Attribution per player, in player order."""
         return {a.name: a.value for a in self.attributions}
+
+
+class ItemError(Exception):
+    """A row of a batch the server refused: its position, status and message."""
+
+    def __init__(self, row: int, code: str, message: str):
+        super().__init__(f"row {row}: {code}: {message}")
+        self.row, self.code, self.message = row, code, message
 
 
 def _enum(enum: Any, prefix: str, name: str | None) -> int:
@@ -225,9 +233,25 @@ class Client:
         request = _explain_request(model_id, row, options)
         return Explanation.from_message(self.attributions.Explain(request, timeout=self.timeout))
 
-    def explain_rows(self, model_id: str, rows: Iterable[Sequence[float | None]], **options: Any) -> list[Explanation]:
-        """Several rows of one model under one set of options, in order."""
-        return [self.explain(model_id, row, **options) for row in rows]
+    def explain_rows(self, model_id: str, rows: Iterable[Sequence[float | None]],
+                     batch_size: int = 1000, **options: Any) -> list[Explanation]:
+        """Several rows of one model under one set of options, in order, in
+        ExplainBatch calls of at most `batch_size` rows (the server's
+        maximum is 1,024 unless configured). A row the server refuses raises
+        ItemError, naming the row."""
+        shared = _explain_request(model_id, [], options)
+        rows = list(rows)
+        answers: list[Explanation] = []
+        for start in range(0, len(rows), batch_size):
+            chunk = rows[start:start + batch_size]
+            request = pb.ExplainBatchRequest(request=shared, instances=[
+                pb.BatchInstance(instance=[math.nan if v is None else float(v) for v in row]) for row in chunk])
+            response = self.attributions.ExplainBatch(request, timeout=self.timeout)
+            for item in sorted(response.items, key=lambda item: item.index):
+                if item.HasField("error"):
+                    raise ItemError(start + item.index, item.error.code_name, item.error.message)
+                answers.append(Explanation.from_message(item.explanation))
+        return answers
 
     def explain_frame(self, model_id: str, frame: Any, **options: Any) -> Any:
         """A pandas DataFrame of rows (columns in the model's feature order)

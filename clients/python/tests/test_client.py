@@ -11,7 +11,7 @@ import grpc
 import pandas
 import pytest
 
-from apportion_client import Client
+from apportion_client import Client, ItemError
 
 WEIGHTS = [0.8, -1.1, 0.5]
 BACKGROUND = [[1.0, 2.0, 0.0], [3.0, 0.0, 4.0], [2.0, 1.0, 2.0]]
@@ -70,3 +70,10 @@ def test_bad_input_is_the_server_status_naming_the_field(client):
     assert error.value.details().startswith("instance")
     with pytest.raises(ValueError, match="target"):
         client.explain("py-package-linear", [1.0, 2.0, 3.0], target="probabilty")
+
+
+def test_a_bad_row_in_a_batch_names_the_row(client):
+    with pytest.raises(ItemError) as error:
+        client.explain_rows("py-package-linear", [[1.0, 2.0, 3.0], [1.0, float("nan"), 3.0]])
+    assert error.value.row == 1
+    assert error.value.code == "INVALID_ARGUMENT"
