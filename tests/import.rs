@@ -6,6 +6,8 @@
 
 mod support;
 
+use support::{json_numbers, worst_relative};
+
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -36,15 +38,6 @@ struct Recorded {
     leaf_sum: Option<Vec<f64>>,
 }
 
-fn numbers(value: &Value) -> Vec<f64> {
-    value
-        .as_array()
-        .expect("an array")
-        .iter()
-        .map(|v| v.as_f64().unwrap_or(f64::NAN))
-        .collect()
-}
-
 fn recorded(name: &str) -> Recorded {
     let text = std::fs::read_to_string(fixture_dir().join(format!("{name}.rows.json"))).unwrap();
     let json: Value = serde_json::from_str(&text).unwrap();
@@ -53,7 +46,7 @@ fn recorded(name: &str) -> Recorded {
         .as_array()
         .unwrap()
         .iter()
-        .flat_map(numbers)
+        .flat_map(json_numbers)
         .collect();
     Recorded {
         rows: Array2::from_shape_vec((values.len() / features, features), values).unwrap(),
@@ -64,8 +57,8 @@ fn recorded(name: &str) -> Recorded {
             .iter()
             .map(|v| v.as_str().unwrap().to_string())
             .collect(),
-        margin: numbers(&json["margin"]),
-        leaf_sum: json.get("leaf_sum").map(numbers),
+        margin: json_numbers(&json["margin"]),
+        leaf_sum: json.get("leaf_sum").map(json_numbers),
     }
 }
 
@@ -87,19 +80,6 @@ fn predictions(model: &TreeEnsemble, rows: &Array2<f64>) -> Vec<f64> {
     let mut out = vec![0.0; rows.nrows()];
     model.predict(rows.view(), &mut out);
     out
-}
-
-/// Largest |a − b| / max(1, |b|).
-fn worst_relative(got: &[f64], reference: &[f64]) -> (f64, usize) {
-    assert_eq!(got.len(), reference.len());
-    got.iter()
-        .zip(reference)
-        .map(|(a, b)| (a - b).abs() / b.abs().max(1.0))
-        .enumerate()
-        .fold(
-            (0.0, 0),
-            |(worst, at), (i, e)| if e > worst { (e, i) } else { (worst, at) },
-        )
 }
 
 type Importer = fn(&[u8], Option<u32>) -> apportion::engine::Result<ImportedTrees>;

@@ -9,6 +9,8 @@
 
 mod support;
 
+use support::{json_numbers, worst_relative};
+
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -37,15 +39,6 @@ struct Recorded {
     output: Option<Vec<f64>>,
 }
 
-fn numbers(value: &Value) -> Vec<f64> {
-    value
-        .as_array()
-        .expect("an array")
-        .iter()
-        .map(|v| v.as_f64().unwrap_or(f64::NAN))
-        .collect()
-}
-
 fn recorded(name: &str) -> Recorded {
     let path = fixture_dir().join(format!("{name}.onnx.rows.json"));
     let json: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
@@ -54,13 +47,13 @@ fn recorded(name: &str) -> Recorded {
         .as_array()
         .unwrap()
         .iter()
-        .flat_map(numbers)
+        .flat_map(json_numbers)
         .collect();
     Recorded {
         rows: Array2::from_shape_vec((values.len() / features, features), values).unwrap(),
         class_index: json["class_index"].as_u64().unwrap() as u32,
-        margin: numbers(&json["margin"]),
-        output: json.get("output").map(numbers),
+        margin: json_numbers(&json["margin"]),
+        output: json.get("output").map(json_numbers),
     }
 }
 
@@ -100,19 +93,6 @@ fn predictions(model: &dyn Model, rows: &Array2<f64>) -> Vec<f64> {
     let mut out = vec![0.0; rows.nrows()];
     model.predict(rows.view(), &mut out);
     out
-}
-
-/// Largest |a − b| / max(1, |b|), and where.
-fn worst_relative(got: &[f64], reference: &[f64]) -> (f64, usize) {
-    assert_eq!(got.len(), reference.len());
-    got.iter()
-        .zip(reference)
-        .map(|(a, b)| (a - b).abs() / b.abs().max(1.0))
-        .enumerate()
-        .fold(
-            (0.0, 0),
-            |(worst, at), (i, e)| if e > worst { (e, i) } else { (worst, at) },
-        )
 }
 
 const FIXTURES: [(&str, &str, Link); 11] = [

@@ -99,3 +99,27 @@ impl TestServer {
             .expect("the server stops cleanly");
     }
 }
+
+/// The numbers of a JSON array, null read as NaN (fixtures write missing
+/// values and NaN as null).
+pub fn json_numbers(value: &serde_json::Value) -> Vec<f64> {
+    value
+        .as_array()
+        .expect("an array")
+        .iter()
+        .map(|v| v.as_f64().unwrap_or(f64::NAN))
+        .collect()
+}
+
+/// Largest |a − b| / max(1, |b|), and where.
+pub fn worst_relative(got: &[f64], reference: &[f64]) -> (f64, usize) {
+    assert_eq!(got.len(), reference.len());
+    got.iter()
+        .zip(reference)
+        .map(|(a, b)| (a - b).abs() / b.abs().max(1.0))
+        .enumerate()
+        .fold(
+            (0.0, 0),
+            |(worst, at), (i, e)| if e > worst { (e, i) } else { (worst, at) },
+        )
+}
