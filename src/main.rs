@@ -176,6 +176,9 @@ struct ServeArgs {
     /// Most requests of one ExplainStream computed or waiting to be sent at once [default: 16].
     #[arg(long, env = "APPORTION_MAX_STREAM_IN_FLIGHT")]
     max_stream_in_flight: Option<usize>,
+    /// On SIGTERM or Ctrl-C, how long calls in flight may take to finish before their computations are cancelled [default: 20000].
+    #[arg(long, env = "APPORTION_DRAIN_TIMEOUT_MS")]
+    drain_timeout_ms: Option<u64>,
 }
 
 impl ServeArgs {
@@ -202,6 +205,7 @@ impl ServeArgs {
             tokens_file: self.tokens_file,
             max_batch_instances: self.max_batch_instances,
             max_stream_in_flight: self.max_stream_in_flight,
+            drain_timeout_ms: self.drain_timeout_ms,
         };
         Ok(given.over(file).resolve()?)
     }
@@ -387,8 +391,7 @@ fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
 }
 
 /// Completes on Ctrl-C (SIGINT) or SIGTERM, which service managers and
-/// container runtimes send; in-flight calls then finish before `run`
-/// returns.
+/// container runtimes send; `run` then drains before it returns.
 async fn stop_requested() {
     let interrupt = tokio::signal::ctrl_c();
     #[cfg(unix)]

@@ -202,6 +202,7 @@ pub struct Job {
     estimator: EstimatorKind,
     plan_reason: String,
     predicted: Duration,
+    minimum: Duration,
     /// When [`prepare`] was called: the explanation's elapsed time counts
     /// from here.
     prepared_at: Instant,
@@ -213,6 +214,7 @@ impl std::fmt::Debug for Job {
             .debug_struct("Job")
             .field("estimator", &self.estimator)
             .field("predicted", &self.predicted)
+            .field("minimum", &self.minimum)
             .field("plan_reason", &self.plan_reason)
             .finish_non_exhaustive()
     }
@@ -257,6 +259,7 @@ pub struct JobTemplate {
     estimator: EstimatorKind,
     plan_reason: String,
     predicted: Duration,
+    minimum: Duration,
 }
 
 impl std::fmt::Debug for JobTemplate {
@@ -265,6 +268,7 @@ impl std::fmt::Debug for JobTemplate {
             .debug_struct("JobTemplate")
             .field("estimator", &self.estimator)
             .field("predicted", &self.predicted)
+            .field("minimum", &self.minimum)
             .finish_non_exhaustive()
     }
 }
@@ -380,6 +384,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         estimator: chosen.estimator,
         plan_reason: chosen.reason,
         predicted: chosen.predicted,
+        minimum: chosen.minimum,
     })
 }
 
@@ -398,6 +403,11 @@ impl JobTemplate {
     /// Predicted computing time of one instance.
     pub fn predicted(&self) -> Duration {
         self.predicted
+    }
+
+    /// Predicted time of the smallest answer for one instance.
+    pub fn minimum(&self) -> Duration {
+        self.minimum
     }
 
     fn job_from(
@@ -432,6 +442,7 @@ impl JobTemplate {
             estimator: self.estimator,
             plan_reason: self.plan_reason.clone(),
             predicted: self.predicted,
+            minimum: self.minimum,
             prepared_at,
         })
     }
@@ -445,6 +456,12 @@ impl Job {
     /// Predicted computing time, from the prepared model's measured costs.
     pub fn predicted(&self) -> Duration {
         self.predicted
+    }
+
+    /// Predicted time of the smallest answer the job can give: all of it
+    /// for an exact estimator, the first round for an anytime sampler.
+    pub fn minimum(&self) -> Duration {
+        self.minimum
     }
 
     /// Whether the job is cheaper to compute where the call arrives than

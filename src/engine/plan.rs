@@ -70,6 +70,11 @@ pub struct Plan {
     pub reason: String,
     /// Predicted computing time, from the measured costs.
     pub predicted: Duration,
+    /// Predicted time of the smallest answer the plan can give: all of it
+    /// for an exact estimator, the first round for an anytime sampler
+    /// (which stops at its deadline with what it has). Admission control
+    /// refuses a call that cannot start early enough to finish this much.
+    pub minimum: Duration,
 }
 
 impl PlanInput {
@@ -350,6 +355,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                 max_evaluations: input.max_evaluations,
                 reason: format!("{} as requested", requested.name()),
                 predicted,
+                minimum: predicted,
             })
         }
         EstimatorKind::Exact => {
@@ -378,6 +384,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                 max_evaluations: input.max_evaluations,
                 reason: format!("{} as requested", requested.name()),
                 predicted,
+                minimum: predicted,
             })
         }
         EstimatorKind::TreeRowSample => {
@@ -396,6 +403,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                     input.background_rows
                 ),
                 predicted: input.predicted_tree_rows(rows),
+                minimum: predicted,
             })
         }
         EstimatorKind::RowPermutation => {
@@ -411,6 +419,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                 max_evaluations: rows,
                 reason: format!("{} as requested, up to {rows} model rows", requested.name()),
                 predicted: input.predicted_rows(rows),
+                minimum: predicted,
             })
         }
         sampler => {
@@ -429,6 +438,7 @@ fn plan_requested(input: &PlanInput, requested: EstimatorKind) -> Result<Plan> {
                 max_evaluations: cap,
                 reason: format!("{} as requested", requested.name()),
                 predicted: input.predicted(sampler, cap),
+                minimum: predicted,
             })
         }
     }
@@ -449,6 +459,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
                 max_evaluations: input.max_evaluations,
                 reason: why.to_string(),
                 predicted,
+                minimum: predicted,
             });
         }
         passed_over.push(format!(
@@ -468,6 +479,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
                 max_evaluations: rows,
                 reason: passed_over.join("; "),
                 predicted: input.predicted_tree_rows(rows),
+                minimum: input.predicted_tree_rows(TREE_ROWS_MINIMUM),
             });
         }
     }
@@ -488,6 +500,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
                     input.summary.name()
                 ),
                 predicted,
+                minimum: predicted,
             });
         }
         // No sampler estimates these summaries: the exact answer is the
@@ -517,6 +530,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
             max_evaluations: all,
             reason: passed_over.join("; "),
             predicted,
+            minimum: predicted,
         });
     }
     passed_over.push(if p > cap {
@@ -558,6 +572,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
             max_evaluations: sampled_cap,
             reason: passed_over.join("; "),
             predicted: input.predicted(estimator, sampled_cap),
+            minimum: input.predicted(estimator, needed),
         });
     }
     let coalition_predicted = input.predicted(estimator, needed);
@@ -590,6 +605,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
                 max_evaluations: rows,
                 reason: passed_over.join("; "),
                 predicted: input.predicted_rows(rows),
+                minimum: input.predicted_rows(rows_needed),
             });
         }
         let row_predicted = input.predicted_rows(rows_needed);

@@ -10,6 +10,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use tokio::sync::mpsc;
+use tokio::task::JoinSet;
 use tokio_stream::wrappers::ReceiverStream;
 use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
@@ -17,7 +18,8 @@ use tonic::{Request, Response, Status, Streaming};
 use super::auth::Access;
 use super::convert;
 use super::deadline::{effective_budget, grpc_timeout};
-use super::pool::guarded;
+use super::drain::Flight;
+use super::pool::{Timing, guarded};
 use super::proto;
 use super::proto::attributions_server::Attributions;
 use super::server::{Limits, Shared, observe};
@@ -115,13 +117,22 @@ impl AttributionsService {
         let admit_by = call_deadline.unwrap_or(arrival + budget);
         let count = batch.instances.len();
         let chunk_size = count.div_ceil(shared.pool.threads().min(count));
-        let cancel = CancelOnDrop(CancelFlag::new());
+        let cancel = CancelOnDrop(shared.drain.cancel_flag());
         let mut chunks = Vec::new();
         let mut instances = batch.instances.into_iter().enumerate().peekable();
         while instances.peek().is_some() {
             let chunk: Vec<(usize, proto::BatchInstance)> =
                 instances.by_ref().take(chunk_size).collect();
             let indices: Vec<usize> = chunk.iter().map(|(index, _)| *index).collect();
+            // A chunk computes its instances one after another, each with
+            // the call's budget from when it starts.
+            let instances = indices.len() as u32;
+            let timing = Timing {
+                admit_by,
+                deadline: call_deadline.unwrap_or(admit_by + budget * instances),
+                predicted: template.predicted().min(budget) * instances,
+                minimum: template.minimum() * instances,
+            };
             let template = template.clone();
             let flag = cancel.0.clone();
             let work = move || {
@@ -151,7 +162,7 @@ impl AttributionsService {
             let pool = shared.pool.clone();
             chunks.push((
                 indices,
-                tokio::spawn(async move { pool.run(admit_by, work).await }),
+                tokio::spawn(async move { pool.run(timing, work).await }),
             ));
         }
         let mut items = Vec::with_capacity(count);
@@ -177,7 +188,7 @@ impl AttributionsService {
                                 };
                                 Ok(convert::explanation_echoing(&entry, &echo, &answer, budget))
                             }
-                            Err(error) => Err(ServiceError::from(error)),
+                            Err(error) => Err(unless_stopping(shared, error)),
                         };
                         items.push(item(request_id, index as u64, result, "ExplainBatch"));
                     }
@@ -199,6 +210,7 @@ impl AttributionsService {
             }
         }
         drop(cancel);
+        on_time(timeout.map(|timeout| arrival + timeout))?;
         items.sort_by_key(|item| item.index);
         Ok(proto::ExplainBatchResponse { items })
     }
@@ -239,22 +251,56 @@ async fn explain_one(
     let answer = if job.runs_inline() {
         guarded("computation", || job.run(deadline))??
     } else {
+        let timing = Timing {
+            admit_by,
+            deadline,
+            predicted: job.predicted(),
+            minimum: job.minimum(),
+        };
         // Dropped with this future when the client cancels or the call's
         // deadline passes: the computation then stops at its next check
         // and frees its compute thread.
-        let cancel = CancelOnDrop(CancelFlag::new());
+        let cancel = CancelOnDrop(shared.drain.cancel_flag());
         let flag = cancel.0.clone();
         let answer = shared
             .pool
-            .run(admit_by, move || {
-                counted(job.run_cancellable(deadline, flag))
-            })
-            .await??;
+            .run(timing, move || counted(job.run_cancellable(deadline, flag)))
+            .await?
+            .map_err(|error| unless_stopping(shared, error))?;
         drop(cancel);
         answer
     };
+    on_time(timeout.map(|timeout| arrival + timeout))?;
     record(&answer);
     Ok(convert::explanation(&entry, &message, &answer, budget))
+}
+
+/// A computation cancelled because the server is stopping answers
+/// UNAVAILABLE: its caller did not cancel, and another replica can answer.
+fn unless_stopping(shared: &Shared, error: engine::EngineError) -> ServiceError {
+    if error.kind == ErrorKind::Cancelled && shared.drain.stopped() {
+        ServiceError::ShuttingDown(
+            "the server stopped before this computation finished; retry on another replica".into(),
+        )
+    } else {
+        error.into()
+    }
+}
+
+/// Refuses to send an answer after the call's deadline: the caller has
+/// stopped waiting, and an OK it never reads would count as on time.
+fn on_time(call_deadline: Option<Instant>) -> Result<(), ServiceError> {
+    match call_deadline {
+        Some(deadline) => match Instant::now().checked_duration_since(deadline) {
+            Some(late) if !late.is_zero() => Err(ServiceError::Late(format!(
+                "the answer was ready {:.1} ms after the call's deadline, so it is not sent; give \
+                 a longer deadline or a smaller budget_ms",
+                late.as_secs_f64() * 1e3
+            ))),
+            _ => Ok(()),
+        },
+        None => Ok(()),
+    }
 }
 
 /// Counts a computation its call's cancellation stopped.
@@ -297,11 +343,14 @@ fn count_item(rpc: &'static str, outcome: &proto::ExplainOutcome) {
 
 /// Reads a stream's requests while it has room (see [`super::stream`]),
 /// explains each in its own task, and queues the answers for the
-/// transport; stops reading when the client stops sending or goes away.
+/// transport; stops reading when the client stops sending or goes away, or
+/// when the server drains: the requests in flight are then answered and
+/// the stream ends UNAVAILABLE, naming the first request not read.
 fn serve_stream(
     shared: Arc<Shared>,
     mut inbound: Streaming<proto::ExplainRequest>,
     timeout: Option<Duration>,
+    flight: Flight,
 ) -> ReceiverStream<Result<(proto::ExplainOutcome, Place), Status>> {
     let opened = Instant::now();
     let room = Room::new(shared.stream_in_flight, shared.streams.clone());
@@ -309,17 +358,26 @@ fn serve_stream(
     // holding a place, and one error ends the stream.
     let (answers, queued) = mpsc::channel(shared.stream_in_flight + 1);
     tokio::spawn(async move {
+        // In flight until its last answer is queued.
+        let _flight = flight;
+        let mut computing = JoinSet::new();
         let mut index = 0u64;
+        let mut drained = false;
         loop {
-            let Some(mut place) = room.place().await else {
-                break;
-            };
+            while computing.try_join_next().is_some() {}
             let next = tokio::select! {
-                next = inbound.message() => next,
-                () = answers.closed() => break,
+                place = room.place() => match place {
+                    Some(place) => tokio::select! {
+                        next = inbound.message() => next.map(|next| next.map(|message| (message, place))),
+                        () = answers.closed() => break,
+                        () = shared.drain.draining() => { drained = true; break }
+                    },
+                    None => break,
+                },
+                () = shared.drain.draining() => { drained = true; break }
             };
-            let message = match next {
-                Ok(Some(message)) => message,
+            let (message, mut place) = match next {
+                Ok(Some(next)) => next,
                 Ok(None) => break,
                 Err(status) => {
                     let _ = answers.send(Err(status)).await;
@@ -330,7 +388,7 @@ fn serve_stream(
             let answers = answers.clone();
             let shared = shared.clone();
             let left = timeout.map(|t| t.saturating_sub(opened.elapsed()));
-            tokio::spawn(async move {
+            computing.spawn(async move {
                 let request_id = message.request_id.clone();
                 // Dropping the computation when the client goes away
                 // cancels it (CancelOnDrop inside).
@@ -342,6 +400,15 @@ fn serve_stream(
                 let _ = answers.send(Ok((outcome, place))).await;
             });
             index += 1;
+        }
+        while computing.join_next().await.is_some() {}
+        if drained {
+            let _ = answers
+                .send(Err(Status::from(ServiceError::ShuttingDown(format!(
+                    "the server is shutting down: requests from index {index} on were not read; \
+                     send them on a new stream to another replica"
+                )))))
+                .await;
         }
     });
     ReceiverStream::new(queued)
@@ -405,8 +472,8 @@ impl Attributions for AttributionsService {
         &self,
         request: Request<proto::ExplainBatchRequest>,
     ) -> Result<Response<proto::ExplainBatchResponse>, Status> {
-        let result = match self.shared.authorize(request.metadata(), Access::Explain) {
-            Ok(()) => AttributionsService::explain_batch(self, request)
+        let result = match self.shared.admit(request.metadata(), Access::Explain) {
+            Ok(_flight) => AttributionsService::explain_batch(self, request)
                 .await
                 .map(Response::new)
                 .map_err(Status::from),
@@ -420,13 +487,16 @@ impl Attributions for AttributionsService {
         &self,
         request: Request<Streaming<proto::ExplainRequest>>,
     ) -> Result<Response<Self::ExplainStreamStream>, Status> {
-        if let Err(refused) = self.shared.authorize(request.metadata(), Access::Explain) {
-            let result = Err(refused);
-            observe("ExplainStream", &result);
-            return result;
-        }
+        let flight = match self.shared.admit(request.metadata(), Access::Explain) {
+            Ok(flight) => flight,
+            Err(refused) => {
+                let result = Err(refused);
+                observe("ExplainStream", &result);
+                return result;
+            }
+        };
         let timeout = grpc_timeout(request.metadata());
-        let queued = serve_stream(self.shared.clone(), request.into_inner(), timeout);
+        let queued = serve_stream(self.shared.clone(), request.into_inner(), timeout, flight);
         // The place is given back as the answer leaves for the transport.
         let answers = queued.map(|answer| {
             answer.map(|(outcome, place)| {
@@ -444,8 +514,8 @@ impl Attributions for AttributionsService {
         &self,
         request: Request<proto::ExplainRequest>,
     ) -> Result<Response<proto::Explanation>, Status> {
-        let result = match self.shared.authorize(request.metadata(), Access::Explain) {
-            Ok(()) => AttributionsService::explain(self, request)
+        let result = match self.shared.admit(request.metadata(), Access::Explain) {
+            Ok(_flight) => AttributionsService::explain(self, request)
                 .await
                 .map(Response::new)
                 .map_err(Status::from),

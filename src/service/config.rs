@@ -19,6 +19,7 @@
 //! max_coalition_rows = 1048576
 //! max_batch_instances = 1024          # instances in one ExplainBatch call
 //! max_stream_in_flight = 16           # requests of one ExplainStream computed or unsent
+//! drain_timeout_ms = 20000            # on SIGTERM, time for calls in flight to finish
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -56,6 +57,7 @@ pub struct ConfigLayer {
     pub tokens_file: Option<PathBuf>,
     pub max_batch_instances: Option<usize>,
     pub max_stream_in_flight: Option<usize>,
+    pub drain_timeout_ms: Option<u64>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -113,6 +115,7 @@ impl ConfigLayer {
             tokens_file: self.tokens_file.or(lower.tokens_file),
             max_batch_instances: self.max_batch_instances.or(lower.max_batch_instances),
             max_stream_in_flight: self.max_stream_in_flight.or(lower.max_stream_in_flight),
+            drain_timeout_ms: self.drain_timeout_ms.or(lower.drain_timeout_ms),
         }
     }
 
@@ -207,6 +210,9 @@ impl ConfigLayer {
             max_stream_in_flight: self
                 .max_stream_in_flight
                 .unwrap_or(defaults.max_stream_in_flight),
+            drain_timeout: self
+                .drain_timeout_ms
+                .map_or(defaults.drain_timeout, Duration::from_millis),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -245,6 +251,7 @@ impl Config {
             tokens_file: self.tokens_file.clone(),
             max_batch_instances: Some(self.max_batch_instances),
             max_stream_in_flight: Some(self.max_stream_in_flight),
+            drain_timeout_ms: Some(self.drain_timeout.as_millis() as u64),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -295,6 +302,7 @@ mod tests {
             max_draws: Some(64),
             max_batch_instances: Some(10),
             max_stream_in_flight: Some(3),
+            drain_timeout_ms: Some(1500),
             ..ConfigLayer::default()
         }
         .resolve()
@@ -310,6 +318,7 @@ mod tests {
         assert_eq!(again.max_draws, 64);
         assert_eq!(again.max_batch_instances, 10);
         assert_eq!(again.max_stream_in_flight, 3);
+        assert_eq!(again.drain_timeout, Duration::from_millis(1500));
     }
 
     #[test]

@@ -24,8 +24,8 @@ impl Diagnostics for DiagnosticsService {
     ) -> Result<Response<proto::EchoResponse>, Status> {
         let result = self
             .shared
-            .authorize(request.metadata(), Access::Read)
-            .map(|()| {
+            .admit(request.metadata(), Access::Read)
+            .map(|_flight| {
                 Response::new(proto::EchoResponse {
                     payload: request.into_inner().payload,
                 })

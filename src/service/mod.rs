@@ -1,6 +1,6 @@
 //! The gRPC face of apportion: the generated API types, their conversion to
 //! registry and engine types, the error → status mapping, one file per
-//! service, the compute pool, deadlines, and the server that runs them with
+//! service, the compute pool, deadlines, draining, and the server that runs them with
 //! health and reflection.
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
@@ -11,6 +11,7 @@ pub mod config;
 pub mod convert;
 pub mod deadline;
 mod diagnostics;
+mod drain;
 pub mod pool;
 mod registry_api;
 pub mod server;

@@ -73,8 +73,8 @@ impl RegistryApi for RegistryService {
         &self,
         request: Request<proto::RegisterModelRequest>,
     ) -> Result<Response<proto::ModelInfo>, Status> {
-        let result = match self.shared.authorize(request.metadata(), Access::Write) {
-            Ok(()) => self
+        let result = match self.shared.admit(request.metadata(), Access::Write) {
+            Ok(_flight) => self
                 .register(request.into_inner())
                 .await
                 .map(Response::new)
@@ -91,8 +91,8 @@ impl RegistryApi for RegistryService {
     ) -> Result<Response<proto::ModelInfo>, Status> {
         let result = self
             .shared
-            .authorize(request.metadata(), Access::Read)
-            .and_then(|()| {
+            .admit(request.metadata(), Access::Read)
+            .and_then(|_flight| {
                 let request = request.into_inner();
                 self.shared
                     .registry
@@ -110,8 +110,8 @@ impl RegistryApi for RegistryService {
     ) -> Result<Response<proto::ListModelsResponse>, Status> {
         let result = self
             .shared
-            .authorize(request.metadata(), Access::Read)
-            .map(|()| {
+            .admit(request.metadata(), Access::Read)
+            .map(|_flight| {
                 let models = self
                     .shared
                     .registry
@@ -129,8 +129,8 @@ impl RegistryApi for RegistryService {
         &self,
         request: Request<proto::DeleteModelRequest>,
     ) -> Result<Response<proto::DeleteModelResponse>, Status> {
-        let result = match self.shared.authorize(request.metadata(), Access::Write) {
-            Ok(()) => self
+        let result = match self.shared.admit(request.metadata(), Access::Write) {
+            Ok(_flight) => self
                 .delete(request.into_inner())
                 .await
                 .map(Response::new)

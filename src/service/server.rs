@@ -16,6 +16,7 @@ use tonic::metadata::MetadataMap;
 use super::attributions::AttributionsService;
 use super::auth::{Access, Tokens};
 use super::diagnostics::DiagnosticsService;
+use super::drain::{Drain, Flight};
 use super::pool::ComputePool;
 use super::proto;
 use super::proto::attributions_server::AttributionsServer;
@@ -73,6 +74,9 @@ pub struct Config {
     /// at once; the server reads the stream's next request only below it,
     /// so a slow reader holds at most this many answers in the server.
     pub max_stream_in_flight: usize,
+    /// How long calls in flight may take to finish once the server is
+    /// asked to stop; computations still running then are cancelled.
+    pub drain_timeout: Duration,
 }
 
 impl Default for Config {
@@ -94,6 +98,9 @@ impl Default for Config {
             tokens_file: None,
             max_batch_instances: 1024,
             max_stream_in_flight: 16,
+            // Inside Kubernetes' default 30 s grace period, with room for
+            // the cancelled computations to answer.
+            drain_timeout: Duration::from_secs(20),
         }
     }
 }
@@ -114,15 +121,21 @@ pub(super) struct Shared {
     pub(super) streams: Arc<StreamStats>,
     /// The bearer tokens calls must carry; `None`: calls are not checked.
     pub(super) tokens: Option<Tokens>,
+    /// The calls in flight, and whether the server is draining.
+    pub(super) drain: Arc<Drain>,
+    pub(super) drain_timeout: Duration,
 }
 
 impl Shared {
-    /// Whether the call's token allows `access` (always, without tokens).
-    pub(super) fn authorize(&self, metadata: &MetadataMap, access: Access) -> Result<(), Status> {
-        match &self.tokens {
-            Some(tokens) => tokens.check(metadata, access),
-            None => Ok(()),
+    /// Admits a call: refused while the server drains, and unless its
+    /// token allows `access` (always, without tokens). The call counts as
+    /// in flight until the returned guard is dropped.
+    pub(super) fn admit(&self, metadata: &MetadataMap, access: Access) -> Result<Flight, Status> {
+        let flight = self.drain.enter().map_err(Status::from)?;
+        if let Some(tokens) = &self.tokens {
+            tokens.check(metadata, access)?;
         }
+        Ok(flight)
     }
 }
 
@@ -186,6 +199,8 @@ impl State {
                 stream_in_flight: config.max_stream_in_flight.max(1),
                 streams: Arc::new(StreamStats::default()),
                 tokens: None,
+                drain: Arc::new(Drain::default()),
+                drain_timeout: config.drain_timeout,
             }),
             max_message_bytes: config.max_message_bytes,
         }
@@ -253,7 +268,7 @@ fn follow_status_table(
 }
 
 /// Serves every service (with health and reflection) on `listener` until
-/// `shutdown` completes; in-flight calls then finish before it returns.
+/// `shutdown` completes and the server has drained (see [`drain`]).
 pub async fn run(
     listener: TcpListener,
     state: State,
@@ -280,15 +295,7 @@ pub async fn run(
     .max_encoding_message_size(limit);
 
     let (health_reporter, health) = tonic_health::server::health_reporter();
-    health_reporter
-        .set_serving::<RegistryServer<RegistryService>>()
-        .await;
-    health_reporter
-        .set_serving::<AttributionsServer<AttributionsService>>()
-        .await;
-    health_reporter
-        .set_serving::<DiagnosticsServer<DiagnosticsService>>()
-        .await;
+    set_health(&health_reporter, tonic_health::ServingStatus::Serving).await;
 
     let reflection = || {
         tonic_reflection::server::Builder::configure()
@@ -304,7 +311,12 @@ pub async fn run(
         models = shared.registry.list().len(),
         "serving gRPC"
     );
-    tonic::transport::Server::builder()
+    let (drained, drain_done) = tokio::sync::oneshot::channel();
+    let drained = async {
+        drain(&shared, &health_reporter, shutdown).await;
+        let _ = drained.send(());
+    };
+    let server = tonic::transport::Server::builder()
         .layer(tower::util::MapResponseLayer::new(follow_status_table))
         .add_service(health)
         .add_service(reflection_v1)
@@ -316,9 +328,87 @@ pub async fn run(
             // Without TCP_NODELAY a multi-frame response waits on the peer's
             // delayed ACK (about 40 ms per call on loopback).
             tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
-            shutdown,
-        )
-        .await?;
+            drained,
+        );
+    tokio::pin!(server);
+    // tonic then waits for every open call to end; one that never does (a
+    // health Watch, a stream whose client neither reads nor closes) must
+    // not keep the process from stopping.
+    let cut = async {
+        match drain_done.await {
+            Ok(()) => tokio::time::sleep(CANCEL_GRACE).await,
+            Err(_) => std::future::pending().await,
+        }
+    };
+    tokio::select! {
+        served = &mut server => served?,
+        () = cut => tracing::warn!("calls still open after the drain; closing their connections"),
+    }
     tracing::info!("gRPC server stopped");
     Ok(())
 }
+
+/// Every service's health, and the server's as a whole (the empty name).
+async fn set_health(
+    reporter: &tonic_health::server::HealthReporter,
+    status: tonic_health::ServingStatus,
+) {
+    reporter.set_service_status("", status).await;
+    reporter
+        .set_service_status(
+            <RegistryServer<RegistryService> as tonic::server::NamedService>::NAME,
+            status,
+        )
+        .await;
+    reporter
+        .set_service_status(
+            <AttributionsServer<AttributionsService> as tonic::server::NamedService>::NAME,
+            status,
+        )
+        .await;
+    reporter
+        .set_service_status(
+            <DiagnosticsServer<DiagnosticsService> as tonic::server::NamedService>::NAME,
+            status,
+        )
+        .await;
+}
+
+/// Once `shutdown` completes: health turns NOT_SERVING (load balancers and
+/// probes stop sending calls), new calls are refused with UNAVAILABLE while
+/// the listener still answers health checks, and the calls in flight get
+/// the drain timeout to finish. Computations still running then are
+/// cancelled (their callers get UNAVAILABLE) and given a moment to answer.
+/// Completing lets tonic close the connections.
+async fn drain(
+    shared: &Shared,
+    health: &tonic_health::server::HealthReporter,
+    shutdown: impl Future<Output = ()>,
+) {
+    shutdown.await;
+    shared.drain.begin();
+    set_health(health, tonic_health::ServingStatus::NotServing).await;
+    let in_flight = shared.drain.in_flight();
+    tracing::info!(
+        in_flight,
+        drain_timeout_ms = shared.drain_timeout.as_millis() as u64,
+        "stopping: health is NOT_SERVING and new calls are refused; waiting for calls in flight"
+    );
+    if tokio::time::timeout(shared.drain_timeout, shared.drain.idle())
+        .await
+        .is_err()
+    {
+        tracing::warn!(
+            in_flight = shared.drain.in_flight(),
+            "drain timeout passed; cancelling the computations still running"
+        );
+        shared.drain.stop();
+        // Cancelled computations stop at their next check, within a batch
+        // of work; a stream whose client neither reads nor closes is cut
+        // when this completes.
+        let _ = tokio::time::timeout(CANCEL_GRACE, shared.drain.idle()).await;
+    }
+}
+
+/// How long cancelled computations get to answer after the drain timeout.
+const CANCEL_GRACE: Duration = Duration::from_secs(2);

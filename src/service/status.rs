@@ -25,10 +25,22 @@ pub enum ServiceError {
     /// A feature this build does not have.
     #[error("{0}")]
     Unimplemented(String),
-    /// Admission control refused the work: the compute pool had no free
-    /// thread before the call's deadline.
+    /// Admission control refused the work: the compute pool is predicted
+    /// to have no free thread early enough for the call to finish in time.
+    /// `retry_after` is the predicted wait, sent in the
+    /// [`RETRY_AFTER_METADATA`] trailer.
+    #[error("{message}")]
+    Busy {
+        message: String,
+        retry_after: std::time::Duration,
+    },
+    /// The server is draining before it stops: new calls are refused, and
+    /// computations still running at the drain timeout are stopped.
     #[error("{0}")]
-    Exhausted(String),
+    ShuttingDown(String),
+    /// The answer was ready only after the call's deadline: it is not sent.
+    #[error("{0}")]
+    Late(String),
     /// A bug: an engine panic or a broken invariant.
     #[error("internal error: {0}")]
     Internal(String),
@@ -70,7 +82,9 @@ impl ServiceError {
             ServiceError::Invalid(engine) => engine.kind,
             ServiceError::Registry(registry) => registry.kind(),
             ServiceError::Unimplemented(_) => ErrorKind::Unimplemented,
-            ServiceError::Exhausted(_) => ErrorKind::ResourceExhausted,
+            ServiceError::Busy { .. } => ErrorKind::ResourceExhausted,
+            ServiceError::ShuttingDown(_) => ErrorKind::Unavailable,
+            ServiceError::Late(_) => ErrorKind::DeadlineExceeded,
             ServiceError::Internal(_)
             | ServiceError::Transport(_)
             | ServiceError::Reflection(_)
@@ -108,8 +122,20 @@ pub fn status_of(error: &ServiceError) -> Status {
         Some(engine) => format!("{}: {}", api_field(&engine.field), engine.message),
         None => error.to_string(),
     };
-    Status::new(code_of(error.kind()), message)
+    let mut status = Status::new(code_of(error.kind()), message);
+    if let ServiceError::Busy { retry_after, .. } = error {
+        let millis = retry_after.as_millis().max(1).to_string();
+        // Digits are always a valid metadata value.
+        if let Ok(value) = millis.parse() {
+            status.metadata_mut().insert(RETRY_AFTER_METADATA, value);
+        }
+    }
+    status
 }
+
+/// The metadata key of a refusal's retry hint: milliseconds after which the
+/// compute pool is predicted to have room for the same call.
+pub const RETRY_AFTER_METADATA: &str = "apportion-retry-after-ms";
 
 /// The status for one that tonic made itself, before any handler ran, where
 /// it differs from gRPC's table: tonic refuses a message over the server's
@@ -207,9 +233,19 @@ mod tests {
             version: 3,
         });
         assert_eq!(status_of(&not_found).code(), Code::NotFound);
+        let busy = status_of(&ServiceError::Busy {
+            message: "busy".into(),
+            retry_after: std::time::Duration::from_micros(12_400),
+        });
+        assert_eq!(busy.code(), Code::ResourceExhausted);
+        assert_eq!(busy.metadata().get(RETRY_AFTER_METADATA).unwrap(), "12");
         assert_eq!(
-            status_of(&ServiceError::Exhausted("busy".into())).code(),
-            Code::ResourceExhausted
+            status_of(&ServiceError::ShuttingDown("draining".into())).code(),
+            Code::Unavailable
+        );
+        assert_eq!(
+            status_of(&ServiceError::Late("late".into())).code(),
+            Code::DeadlineExceeded
         );
         assert_eq!(
             status_of(&ServiceError::Unimplemented("onnx".into())).code(),
