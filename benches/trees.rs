@@ -6,6 +6,8 @@
 //! fewer repeats). The unit costs in `src/engine/estimate/tree/compiled.rs`
 //! are the fit printed in the second table.
 
+#[path = "support/forest.rs"]
+mod forest;
 mod support;
 
 use std::time::{Duration, Instant};
@@ -15,118 +17,13 @@ use apportion::engine::estimate::{self as estimators};
 use apportion::engine::removal::Marginal;
 use apportion::engine::{CachedGame, ModelGame, Players, Summary, Target};
 use apportion::model::{Link, Model, TreeEnsemble};
-use apportion::registry::{
-    Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, Registry, TreeBody,
-};
+use apportion::registry::{Registry, TreeBody};
 use nalgebra::{DMatrix, DVector};
 use ndarray::{Array2, ArrayView2};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use rand_distr::{Distribution, StandardNormal};
 
-const FEATURES: usize = 30;
 const MEMORY_LIMIT: usize = 256 << 20;
-
-/// Correlated normals (each feature shares a factor with its neighbour and
-/// one with all others), 2% missing: bench data only.
-fn background_rows(seed: u64, rows: usize) -> Array2<f64> {
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut out = Array2::zeros((rows, FEATURES));
-    for mut row in out.rows_mut() {
-        let common: f64 = StandardNormal.sample(&mut rng);
-        let mut previous: f64 = StandardNormal.sample(&mut rng);
-        for slot in row.iter_mut() {
-            let own: f64 = StandardNormal.sample(&mut rng);
-            previous = 0.6 * previous + 0.8 * own;
-            *slot = if rng.random_bool(0.02) {
-                f64::NAN
-            } else {
-                0.5 * common + 0.85 * previous
-            };
-        }
-    }
-    out
-}
-
-/// A complete subtree of `depth` whose thresholds are values the rows
-/// reaching the node take at its feature, as a trained tree's are.
-fn grow(
-    nodes: &mut TreeBody,
-    rng: &mut ChaCha8Rng,
-    depth: usize,
-    data: &Array2<f64>,
-    reach: &[usize],
-    features: usize,
-) -> i32 {
-    let node = nodes.feature.len();
-    nodes.feature.push(-1);
-    nodes.threshold.push(0.0);
-    nodes.left.push(-1);
-    nodes.right.push(-1);
-    nodes.value.push(0.1 * rng.random_range(-1.0..1.0));
-    nodes.missing_left.push(rng.random_bool(0.5));
-    if depth == 0 {
-        return node as i32;
-    }
-    let feature = rng.random_range(0..features);
-    let mut pool: &[usize] = if reach.len() >= 2 { reach } else { &[] };
-    let mut attempts = 0;
-    let threshold = loop {
-        // Rows sent here by a missing direction may all lack the
-        // feature: then draw from all the data.
-        attempts += 1;
-        if attempts > 32 {
-            pool = &[];
-        }
-        let row = if pool.is_empty() {
-            rng.random_range(0..data.nrows())
-        } else {
-            pool[rng.random_range(0..pool.len())]
-        };
-        let value = data[[row, feature]];
-        if !value.is_nan() {
-            break value;
-        }
-    };
-    let missing_left = nodes.missing_left[node];
-    let goes_left = |row: &usize| {
-        let x = data[[*row, feature]];
-        if x.is_nan() {
-            missing_left
-        } else {
-            x < threshold
-        }
-    };
-    let (left_rows, right_rows): (Vec<usize>, Vec<usize>) =
-        reach.iter().partition(|r| goes_left(r));
-    nodes.feature[node] = feature as i32;
-    nodes.threshold[node] = threshold;
-    nodes.left[node] = grow(nodes, rng, depth - 1, data, &left_rows, features);
-    nodes.right[node] = grow(nodes, rng, depth - 1, data, &right_rows, features);
-    node as i32
-}
-
-/// `trees` complete trees of `depth` with thresholds from `data`.
-fn ensemble(seed: u64, trees: usize, depth: usize, data: &Array2<f64>) -> TreeEnsemble {
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let all: Vec<usize> = (0..data.nrows()).collect();
-    let trees = (0..trees)
-        .map(|_| {
-            // Each tree sees a different half of the data, as in bagging.
-            let reach: Vec<usize> = all
-                .iter()
-                .copied()
-                .filter(|_| rng.random_bool(0.5))
-                .collect();
-            let mut nodes = TreeBody::default();
-            grow(&mut nodes, &mut rng, depth, data, &reach, FEATURES);
-            nodes
-                .into_tree(FEATURES)
-                .expect("generated trees are valid")
-        })
-        .collect();
-    TreeEnsemble::try_new(trees, 0.0, Link::Identity, FEATURES).expect("valid ensemble")
-}
 
 /// Median of `repeats` timings of `work`, cycling through `instances`.
 fn median_time<T>(
@@ -182,35 +79,6 @@ fn fit(columns: &[Vec<f64>], times: &[f64]) -> Vec<f64> {
 }
 
 /// Largest absolute difference between two value vectors.
-/// The registration of `model` over `background`, as a client would send it.
-fn spec(model: &TreeEnsemble, background: &Array2<f64>) -> ModelSpec {
-    let trees = model.trees().iter().map(TreeBody::from).collect();
-    ModelSpec {
-        model_id: "bench-trees".to_string(),
-        features: (0..FEATURES)
-            .map(|j| FeatureSpec {
-                name: format!("x{j}"),
-                group: String::new(),
-                reason_code: String::new(),
-                reason_text: String::new(),
-            })
-            .collect(),
-        model: ModelBody::Trees {
-            trees,
-            base_score: model.base_score(),
-        },
-        link: LinkSpec::Identity,
-        background: Background {
-            rows: background.nrows(),
-            cols: background.ncols(),
-            values: background.iter().copied().collect(),
-        },
-        description: String::new(),
-        imported: None,
-        decision: None,
-    }
-}
-
 fn largest_difference(a: &[f64], b: &[f64]) -> f64 {
     a.iter()
         .zip(b)
@@ -225,11 +93,11 @@ fn main() {
     println!();
 
     // 1. 300 trees of depth 6 on 30 features, backgrounds of growing size.
-    let training = background_rows(1, 10_000);
-    let model = ensemble(2, 300, 6, &training);
-    let players = Players::singletons(FEATURES);
-    let pool = background_rows(3, 10_000);
-    let instances = background_rows(4, 16);
+    let training = forest::background_rows(1, 10_000);
+    let model = forest::ensemble(2, 300, 6, &training);
+    let players = Players::singletons(forest::FEATURES);
+    let pool = forest::background_rows(3, 10_000);
+    let instances = forest::background_rows(4, 16);
     println!(
         "| background rows (300 trees, depth 6, 30 features) | per-row pass | compiled | per-row / compiled | compile | memory | pattern trees | predicted | largest difference |"
     );
@@ -283,7 +151,9 @@ fn main() {
     let directory = tempfile::tempdir().expect("a temporary directory");
     let (registry, _) = Registry::open(directory.path()).expect("a registry");
     let started = Instant::now();
-    let info = registry.register(spec(&model, &pool)).expect("registers");
+    let info = registry
+        .register(forest::spec(&model, &pool))
+        .expect("registers");
     println!("| registration (300 trees, depth 6, 30 features, 10,000 rows) | |");
     println!("|---|---|");
     println!(
@@ -305,7 +175,7 @@ fn main() {
     let mut row_samples: Vec<(TreeWork, f64, String)> = Vec::new();
     let mut pattern_samples: Vec<(TreeWork, f64, String)> = Vec::new();
     for depth in [4usize, 6, 8] {
-        let model = ensemble(10 + depth as u64, 50, depth, &training);
+        let model = forest::ensemble(10 + depth as u64, 50, depth, &training);
         for rows in [10usize, 100, 1_000, 10_000] {
             let background = pool.slice(ndarray::s![..rows, ..]).to_owned();
             let forced = [
@@ -387,7 +257,7 @@ fn main() {
                 let mut nodes = TreeBody::default();
                 let reach: Vec<usize> =
                     (0..wide.nrows()).filter(|_| rng.random_bool(0.5)).collect();
-                grow(&mut nodes, &mut rng, 6, &wide, &reach, p);
+                forest::grow(&mut nodes, &mut rng, 6, &wide, &reach, p);
                 nodes.into_tree(p).expect("valid")
             })
             .collect();

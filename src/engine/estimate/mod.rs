@@ -139,6 +139,53 @@ impl Stopping {
     }
 }
 
+/// How fast a sampler's work has gone so far in this run, to size its next
+/// round so the round is predicted to end by the deadline. Sized by counts
+/// alone, a round can overrun the deadline by as much as all the rounds
+/// before it took (rounds double while they are small), and with models
+/// costing milliseconds per coalition that is the whole budget again.
+pub(crate) struct Pace {
+    started: Instant,
+    done: u64,
+}
+
+impl Pace {
+    pub(crate) fn start() -> Pace {
+        Pace {
+            started: Instant::now(),
+            done: 0,
+        }
+    }
+
+    /// Counts work units (coalitions, model rows) just computed.
+    pub(crate) fn record(&mut self, units: u64) {
+        self.done += units;
+    }
+
+    /// At most `wanted` sample units of `unit_cost` work units each, fewer
+    /// if at this run's pace (setup included, so it errs long) they would
+    /// not be done by the deadline; `wanted` when there is no deadline or
+    /// nothing has been measured yet. Zero means the run should stop.
+    pub(crate) fn fit(&self, wanted: u64, unit_cost: u64, stopping: &Stopping) -> u64 {
+        let Some(deadline) = stopping.deadline else {
+            return wanted;
+        };
+        if self.done == 0 {
+            return wanted;
+        }
+        let per_unit = self.started.elapsed().as_secs_f64() / self.done as f64;
+        let left = deadline
+            .saturating_duration_since(Instant::now())
+            .as_secs_f64();
+        let fits = (left / (per_unit * unit_cost.max(1) as f64)).floor();
+        if fits >= wanted as f64 {
+            wanted
+        } else {
+            fits as u64
+        }
+    }
+}
+
 /// The error of a computation whose caller cancelled it.
 pub(crate) fn cancelled() -> EngineError {
     EngineError::of_kind(
@@ -234,5 +281,36 @@ impl Estimate {
     /// summaries.
     pub fn efficiency_gap(&self) -> f64 {
         self.value_full - self.value_empty - self.values.iter().sum::<f64>()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::time::Duration;
+
+    use super::*;
+
+    #[test]
+    fn a_round_is_cut_to_what_fits_before_the_deadline() {
+        // The pace rule this module documents (common practice, no
+        // source). Only bounds that time passing cannot break: the time
+        // left only shrinks and the pace only slows.
+        let mut stopping = Stopping::unbounded();
+        let pace = Pace {
+            started: Instant::now() - Duration::from_millis(10),
+            done: 10,
+        };
+        assert_eq!(pace.fit(100, 1, &stopping), 100, "no deadline");
+        stopping.deadline = Some(Instant::now() + Duration::from_millis(5));
+        assert!(pace.fit(100, 1, &stopping) <= 5, "1 ms a unit, 5 ms left");
+        assert!(pace.fit(100, 2, &stopping) <= 2, "2 ms a unit");
+        stopping.deadline = Some(Instant::now());
+        assert_eq!(pace.fit(100, 1, &stopping), 0, "no time left");
+        let unmeasured = Pace::start();
+        assert_eq!(
+            unmeasured.fit(100, 1, &stopping),
+            100,
+            "nothing measured yet"
+        );
     }
 }

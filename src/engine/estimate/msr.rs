@@ -11,7 +11,7 @@ use super::sampling::{
     Budget, RunningMoments, check_players, evaluate_round, require_evaluations, round_units,
     single_player,
 };
-use super::{Estimate, Stopping};
+use super::{Estimate, Pace, Stopping};
 use crate::engine::coalition::Coalition;
 use crate::engine::error::Result;
 use crate::engine::game::{CachedGame, Game};
@@ -66,6 +66,7 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
     let mut times: HashMap<Coalition, u64> = HashMap::new();
     let mut repeated_inside = vec![0.0; players];
     let mut repeated_outside = vec![0.0; players];
+    let mut pace = Pace::start();
     loop {
         stopping.check_cancelled()?;
         let first = drawn == 0;
@@ -78,7 +79,7 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
             coalitions.extend([Coalition::EMPTY, full]);
         }
         let offset = coalitions.len();
-        let wanted = round_units(drawn, FIRST_SAMPLES, 1);
+        let wanted = pace.fit(round_units(drawn, FIRST_SAMPLES, 1), 1, stopping);
         for _ in 0..wanted {
             let sample = Coalition::from_bits(rng.random::<u128>() & full.bits());
             if !budget.admit(&[sample]) {
@@ -92,6 +93,7 @@ pub fn banzhaf(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
         }
         drawn += admitted;
         evaluate_round(game, &coalitions, &mut values, &mut variances);
+        pace.record(coalitions.len() as u64);
         if first {
             value_empty = values[0];
             value_full = values[1];

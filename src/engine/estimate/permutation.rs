@@ -8,7 +8,7 @@ use super::sampling::{
     Budget, RunningMoments, SharedNoise, check_players, evaluate_round, require_evaluations,
     round_units, single_player,
 };
-use super::{Estimate, Stopping};
+use super::{Estimate, Pace, Stopping};
 use crate::engine::coalition::{Coalition, random_permutation};
 use crate::engine::error::Result;
 use crate::engine::game::{CachedGame, Game};
@@ -62,6 +62,7 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
     let mut shared = game.is_noisy().then(|| SharedNoise::new(players));
     let (mut variance_empty, mut variance_full) = (0.0, 0.0);
     let mut contribution = vec![0.0; players];
+    let mut pace = Pace::start();
     loop {
         stopping.check_cancelled()?;
         let first = averages.count() == 0;
@@ -75,7 +76,11 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
             coalitions.extend([Coalition::EMPTY, full]);
         }
         let offset = coalitions.len();
-        let wanted = round_units(averages.count(), FIRST_PAIRS, unit_cost);
+        let wanted = pace.fit(
+            round_units(averages.count(), FIRST_PAIRS, unit_cost),
+            unit_cost,
+            stopping,
+        );
         for _ in 0..wanted {
             random_permutation(players, &mut order, &mut rng);
             unit.clear();
@@ -96,6 +101,7 @@ pub fn shapley(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Esti
             break;
         }
         evaluate_round(game, &coalitions, &mut values, &mut variances);
+        pace.record(coalitions.len() as u64);
         if first {
             value_empty = values[0];
             value_full = values[1];

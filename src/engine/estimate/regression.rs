@@ -17,7 +17,7 @@ use super::fit::{Fit, NormalEquations, PairSample, solve_constrained, std_errors
 use super::sampling::{
     Budget, check_players, evaluate_round, require_evaluations, round_units, single_player,
 };
-use super::{Estimate, Stopping};
+use super::{Estimate, Pace, Stopping};
 use crate::engine::coalition::{Coalition, random_of_size};
 use crate::engine::error::{EngineError, Result};
 use crate::engine::game::{CachedGame, Game};
@@ -82,6 +82,7 @@ pub fn paired(
     let mut values = Vec::new();
     let mut variances = Vec::new();
     let mut end_variances = (0.0, 0.0);
+    let mut pace = Pace::start();
     loop {
         stopping.check_cancelled()?;
         let first = samples.is_empty();
@@ -95,7 +96,11 @@ pub fn paired(
             coalitions.extend([Coalition::EMPTY, full]);
         }
         let offset = coalitions.len();
-        let wanted = round_units(samples.len() as u64, first_pairs, 2);
+        let mut wanted = round_units(samples.len() as u64, first_pairs, 2);
+        // Until there is a fit, rounds are not cut to the deadline.
+        if result.is_some() {
+            wanted = pace.fit(wanted, 2, stopping);
+        }
         for _ in 0..wanted {
             let size = 1 + sizes.sample(&mut rng);
             let coalition = random_of_size(players, size, &mut scratch, &mut rng);
@@ -110,6 +115,7 @@ pub fn paired(
             break;
         }
         evaluate_round(game, &coalitions, &mut values, &mut variances);
+        pace.record(coalitions.len() as u64);
         if first {
             ends = (values[0], values[1]);
             if let Some(v) = variances.get(..2) {
@@ -212,6 +218,7 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
     let mut planned: Vec<u64> = vec![0; strata.len()];
     let mut variances = Vec::new();
     let mut end_variances = (0.0, 0.0);
+    let mut pace = Pace::start();
     loop {
         stopping.check_cancelled()?;
         let first = samples.is_empty();
@@ -225,7 +232,11 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
             coalitions.extend([Coalition::EMPTY, full]);
         }
         let undrawn: f64 = strata.iter().map(|s| s.pairs - s.drawn as f64).sum();
-        let wanted = round_units(samples.len() as u64, first_pairs, 2);
+        let mut wanted = round_units(samples.len() as u64, first_pairs, 2);
+        // Until there is a fit, rounds are not cut to the deadline.
+        if result.is_some() {
+            wanted = pace.fit(wanted, 2, stopping);
+        }
         let fits = (budget.remaining() / 2).min(wanted);
         let adding = if undrawn < fits as f64 {
             undrawn as u64
@@ -258,6 +269,7 @@ pub fn leverage(game: &CachedGame, stopping: &Stopping, seed: u64) -> Result<Est
             stratum.drawn = planned[index];
         }
         evaluate_round(game, &coalitions, &mut values, &mut variances);
+        pace.record(coalitions.len() as u64);
         if first {
             ends = (values[0], values[1]);
             if let Some(v) = variances.get(..2) {

@@ -21,7 +21,7 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
 use super::sampling::{RunningMoments, check_players};
-use super::{Estimate, Stopping, default_tolerance};
+use super::{Estimate, Pace, Stopping, default_tolerance};
 use crate::engine::coalition::random_permutation;
 use crate::engine::error::{EngineError, Result};
 use crate::engine::model::{Link, Model};
@@ -131,6 +131,7 @@ pub fn shapley(input: &RowSampling<'_>, stopping: &Stopping, seed: u64) -> Resul
     let mut orders: Vec<usize> = Vec::new();
     let mut order = Vec::with_capacity(players);
     let mut contribution = vec![0.0; players];
+    let mut pace = Pace::start();
     loop {
         stopping.check_cancelled()?;
         let drawn = moments.count();
@@ -144,7 +145,7 @@ pub fn shapley(input: &RowSampling<'_>, stopping: &Stopping, seed: u64) -> Resul
             drawn.clamp(FIRST_PAIRS, most_pairs_per_round)
         };
         let affordable = stopping.max_evaluations.saturating_sub(rows_used) / pair_rows;
-        let pairs = wanted.min(affordable) as usize;
+        let pairs = pace.fit(wanted.min(affordable), pair_rows, stopping) as usize;
         if pairs == 0 {
             break;
         }
@@ -184,6 +185,7 @@ pub fn shapley(input: &RowSampling<'_>, stopping: &Stopping, seed: u64) -> Resul
         input
             .model
             .predict(rows.slice(ndarray::s![..batch, ..]), &mut outputs[..batch]);
+        pace.record(batch as u64);
         rows_used += batch as u64;
         for (k, order) in orders.chunks(players).enumerate() {
             let values = &outputs[k * pair_rows as usize..(k + 1) * pair_rows as usize];
