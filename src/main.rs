@@ -179,6 +179,21 @@ struct ServeArgs {
     /// On SIGTERM or Ctrl-C, how long calls in flight may take to finish before their computations are cancelled [default: 20000].
     #[arg(long, env = "APPORTION_DRAIN_TIMEOUT_MS")]
     drain_timeout_ms: Option<u64>,
+    /// Append every explanation answered OK as a JSON line to this file (or `stdout`) [default: no log].
+    #[arg(long, env = "APPORTION_ATTRIBUTION_LOG")]
+    attribution_log: Option<PathBuf>,
+    /// Rotate the attribution log's file before it passes this size [default: 64].
+    #[arg(long, env = "APPORTION_ATTRIBUTION_LOG_MAX_MIB")]
+    attribution_log_max_mib: Option<u64>,
+    /// Attribution-log files kept, the current one included [default: 4].
+    #[arg(long, env = "APPORTION_ATTRIBUTION_LOG_FILES")]
+    attribution_log_files: Option<usize>,
+    /// Lines waiting for the attribution log's writer; more are dropped and counted [default: 8192].
+    #[arg(long, env = "APPORTION_ATTRIBUTION_LOG_QUEUE")]
+    attribution_log_queue: Option<usize>,
+    /// Log only these models' explanations (comma-separated ids) [default: every model].
+    #[arg(long, env = "APPORTION_ATTRIBUTION_LOG_MODELS", value_delimiter = ',')]
+    attribution_log_models: Option<Vec<String>>,
 }
 
 impl ServeArgs {
@@ -206,6 +221,11 @@ impl ServeArgs {
             max_batch_instances: self.max_batch_instances,
             max_stream_in_flight: self.max_stream_in_flight,
             drain_timeout_ms: self.drain_timeout_ms,
+            attribution_log: self.attribution_log,
+            attribution_log_max_mib: self.attribution_log_max_mib,
+            attribution_log_files: self.attribution_log_files,
+            attribution_log_queue: self.attribution_log_queue,
+            attribution_log_models: self.attribution_log_models,
         };
         Ok(given.over(file).resolve()?)
     }

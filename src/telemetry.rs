@@ -34,6 +34,10 @@ pub const STREAM_IN_FLIGHT: &str = "apportion_stream_requests_in_flight";
 /// Instances and stream requests answered, by rpc (counter; an item with
 /// an error counts too).
 pub const ITEMS: &str = "apportion_items_total";
+/// Attribution-log lines dropped because the writer's queue was full.
+pub const ATTRIBUTION_LOG_DROPPED: &str = "apportion_attribution_log_dropped_total";
+/// Attribution-log lines that could not be written, by step.
+pub const ATTRIBUTION_LOG_ERRORS: &str = "apportion_attribution_log_errors_total";
 
 /// Bucket bounds of the latency histogram, in seconds: from well under a
 /// millisecond to the longest sensible budget.
@@ -128,6 +132,14 @@ fn describe_metrics() {
     metrics::describe_gauge!(
         STREAM_IN_FLIGHT,
         "ExplainStream requests read and not yet handed to the transport"
+    );
+    metrics::describe_counter!(
+        ATTRIBUTION_LOG_DROPPED,
+        "attribution-log lines dropped because the writer's queue was full"
+    );
+    metrics::describe_counter!(
+        ATTRIBUTION_LOG_ERRORS,
+        "attribution-log lines that could not be serialised, written, flushed or rotated, by step"
     );
     metrics::describe_counter!(
         ITEMS,

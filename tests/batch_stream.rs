@@ -493,3 +493,130 @@ async fn a_slow_reader_holds_the_server_to_its_bound_of_requests_in_flight() {
     assert_eq!(server.streams.requests_read() as usize, SENT);
     server.stop().await;
 }
+
+#[tokio::test]
+async fn the_attribution_log_holds_every_answer_once_and_nothing_else() {
+    // The pipeline issue's check: every successful explanation appears in
+    // the log exactly once while the queue has room (here it always has:
+    // a few dozen lines against 8,192), whichever RPC answered it; errors
+    // are not logged, nor are models left out of attribution_log_models.
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("attributions.jsonl");
+    let server = support::start_with(Config {
+        data_dir: Some(dir.path().join("registry")),
+        compute_threads: 2,
+        attribution_log: Some(apportion::service::LogSettings {
+            sink: apportion::service::LogSink::File(path.clone()),
+            max_bytes: 64 << 20,
+            files: 2,
+            queue: 8192,
+            models: Some(["logged".to_string()].into()),
+        }),
+        ..Config::default()
+    })
+    .await;
+    let mut registry = server.registry_client();
+    registry
+        .register_model(logistic("logged", 4))
+        .await
+        .unwrap();
+    registry.register_model(logistic("quiet", 4)).await.unwrap();
+    let mut client = server.attributions_client();
+    let request = |model_id: &str, request_id: String, row: usize| proto::ExplainRequest {
+        model_id: model_id.into(),
+        request_id,
+        instance: instance(4, row),
+        budget_ms: 30_000,
+        ..Default::default()
+    };
+    let mut answered = std::collections::BTreeMap::new();
+    for k in 0..6 {
+        let answer = client
+            .explain(request("logged", format!("unary-{k}"), k))
+            .await
+            .unwrap()
+            .into_inner();
+        answered.insert(answer.request_id.clone(), answer);
+        client
+            .explain(request("quiet", format!("quiet-{k}"), k))
+            .await
+            .unwrap();
+    }
+    let refused = client
+        .explain(proto::ExplainRequest {
+            instance: vec![1.0],
+            ..request("logged", "refused".into(), 0)
+        })
+        .await;
+    assert_eq!(refused.unwrap_err().code(), Code::InvalidArgument);
+    let batch = client
+        .explain_batch(proto::ExplainBatchRequest {
+            request: Some(proto::ExplainRequest {
+                instance: vec![],
+                ..request("logged", "batch".into(), 0)
+            }),
+            instances: (0..3)
+                .map(|k| proto::BatchInstance {
+                    instance: instance(4, 10 + k),
+                    request_id: format!("batch-{k}"),
+                    ..Default::default()
+                })
+                .collect(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    for item in &batch.items {
+        let answer = explanation_of(item).clone();
+        answered.insert(answer.request_id.clone(), answer);
+    }
+    let requests: Vec<_> = (0..4)
+        .map(|k| request("logged", format!("stream-{k}"), 20 + k))
+        .collect();
+    let mut stream = client
+        .explain_stream(tokio_stream::iter(requests))
+        .await
+        .unwrap()
+        .into_inner();
+    while let Some(item) = stream.message().await.unwrap() {
+        let answer = explanation_of(&item).clone();
+        answered.insert(answer.request_id.clone(), answer);
+    }
+    // Stopping the server closes the log: what was queued is written.
+    server.stop().await;
+
+    let text = std::fs::read_to_string(&path).unwrap();
+    let mut logged = std::collections::BTreeMap::new();
+    for line in text.lines() {
+        let line: serde_json::Value = serde_json::from_str(line).unwrap();
+        let request_id = line["request_id"].as_str().unwrap().to_string();
+        assert!(
+            logged.insert(request_id.clone(), line).is_none(),
+            "{request_id} twice"
+        );
+    }
+    assert_eq!(
+        logged.keys().collect::<Vec<_>>(),
+        answered.keys().collect::<Vec<_>>()
+    );
+    for (request_id, answer) in &answered {
+        let line = &logged[request_id];
+        assert_eq!(line["model_id"], "logged");
+        assert_eq!(line["value_full"].as_f64().unwrap(), answer.value_full);
+        let values: Vec<f64> = line["attributions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|a| a["value"].as_f64().unwrap())
+            .collect();
+        let expected: Vec<f64> = answer.attributions.iter().map(|a| a.value).collect();
+        assert_eq!(values, expected, "{request_id}: numbers round-trip exactly");
+        let rpc = request_id.split('-').next().unwrap();
+        let expected_rpc = match rpc {
+            "unary" => "Explain",
+            "batch" => "ExplainBatch",
+            _ => "ExplainStream",
+        };
+        assert_eq!(line["rpc"], expected_rpc);
+    }
+}

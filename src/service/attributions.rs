@@ -186,7 +186,10 @@ impl AttributionsService {
                                     seed,
                                     request: &shape,
                                 };
-                                Ok(convert::explanation_echoing(&entry, &echo, &answer, budget))
+                                let explanation =
+                                    convert::explanation_echoing(&entry, &echo, &answer, budget);
+                                log(shared, "ExplainBatch", &explanation);
+                                Ok(explanation)
                             }
                             Err(error) => Err(unless_stopping(shared, error)),
                         };
@@ -273,6 +276,13 @@ async fn explain_one(
     on_time(timeout.map(|timeout| arrival + timeout))?;
     record(&answer);
     Ok(convert::explanation(&entry, &message, &answer, budget))
+}
+
+/// Offers an answer to the attribution log, if there is one.
+fn log(shared: &Shared, rpc: &'static str, explanation: &proto::Explanation) {
+    if let Some(log) = &shared.log {
+        log.record(rpc, explanation);
+    }
 }
 
 /// A computation cancelled because the server is stopping answers
@@ -396,6 +406,9 @@ fn serve_stream(
                     result = explain_one(&shared, message, Instant::now(), left) => result,
                     () = answers.closed() => return,
                 };
+                if let Ok(explanation) = &result {
+                    log(&shared, "ExplainStream", explanation);
+                }
                 let outcome = item(request_id, index, result, "ExplainStream");
                 let _ = answers.send(Ok((outcome, place))).await;
             });
@@ -517,6 +530,7 @@ impl Attributions for AttributionsService {
         let result = match self.shared.admit(request.metadata(), Access::Explain) {
             Ok(_flight) => AttributionsService::explain(self, request)
                 .await
+                .inspect(|explanation| log(&self.shared, "Explain", explanation))
                 .map(Response::new)
                 .map_err(Status::from),
             Err(refused) => Err(refused),

@@ -20,6 +20,11 @@
 //! max_batch_instances = 1024          # instances in one ExplainBatch call
 //! max_stream_in_flight = 16           # requests of one ExplainStream computed or unsent
 //! drain_timeout_ms = 20000            # on SIGTERM, time for calls in flight to finish
+//! attribution_log = "attributions.jsonl"  # or "stdout"; unset: no log
+//! attribution_log_max_mib = 64        # the file rotates before passing this
+//! attribution_log_files = 4           # files kept, the current one included
+//! attribution_log_queue = 8192        # lines waiting for the writer; more are dropped
+//! attribution_log_models = ["screening"]  # unset: every model
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -32,11 +37,18 @@ use std::time::Duration;
 use serde::{Deserialize, Serialize};
 
 use super::Config;
+use super::attribution_log::{LogSettings, LogSink};
 use crate::engine::job::MAX_DRAWS;
 use crate::telemetry::LogFormat;
 
 /// Largest `max_message_mib`: gRPC frames carry a 32-bit length.
 const MAX_MESSAGE_MIB: usize = 4095;
+
+/// The `attribution_log` value that writes to standard output.
+const STDOUT: &str = "stdout";
+const LOG_MAX_MIB: u64 = 64;
+const LOG_FILES: usize = 4;
+const LOG_QUEUE: usize = 8192;
 
 /// One source of settings; `None` leaves a setting to the source below.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
@@ -58,6 +70,11 @@ pub struct ConfigLayer {
     pub max_batch_instances: Option<usize>,
     pub max_stream_in_flight: Option<usize>,
     pub drain_timeout_ms: Option<u64>,
+    pub attribution_log: Option<PathBuf>,
+    pub attribution_log_max_mib: Option<u64>,
+    pub attribution_log_files: Option<usize>,
+    pub attribution_log_queue: Option<usize>,
+    pub attribution_log_models: Option<Vec<String>>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -87,9 +104,14 @@ impl ConfigLayer {
             message: error.to_string().trim_end().to_string(),
         })?;
         let folder = path.parent().unwrap_or(Path::new(""));
-        for relative in [&mut layer.data_dir, &mut layer.tokens_file] {
+        for relative in [
+            &mut layer.data_dir,
+            &mut layer.tokens_file,
+            &mut layer.attribution_log,
+        ] {
             if let Some(dir) = relative.as_ref()
                 && dir.is_relative()
+                && dir != Path::new(STDOUT)
             {
                 *relative = Some(folder.join(dir));
             }
@@ -116,6 +138,13 @@ impl ConfigLayer {
             max_batch_instances: self.max_batch_instances.or(lower.max_batch_instances),
             max_stream_in_flight: self.max_stream_in_flight.or(lower.max_stream_in_flight),
             drain_timeout_ms: self.drain_timeout_ms.or(lower.drain_timeout_ms),
+            attribution_log: self.attribution_log.or(lower.attribution_log),
+            attribution_log_max_mib: self
+                .attribution_log_max_mib
+                .or(lower.attribution_log_max_mib),
+            attribution_log_files: self.attribution_log_files.or(lower.attribution_log_files),
+            attribution_log_queue: self.attribution_log_queue.or(lower.attribution_log_queue),
+            attribution_log_models: self.attribution_log_models.or(lower.attribution_log_models),
         }
     }
 
@@ -177,6 +206,37 @@ impl ConfigLayer {
                 "must be at least 1 (a stream with no room would never be read)".into(),
             ));
         }
+        if self.attribution_log_max_mib == Some(0) {
+            return Err(invalid(
+                "attribution_log_max_mib",
+                "must be at least 1".into(),
+            ));
+        }
+        if self.attribution_log_files == Some(0) {
+            return Err(invalid(
+                "attribution_log_files",
+                "must be at least 1 (the file being written)".into(),
+            ));
+        }
+        if self.attribution_log_queue == Some(0) {
+            return Err(invalid(
+                "attribution_log_queue",
+                "must be at least 1".into(),
+            ));
+        }
+        if self.attribution_log.is_none()
+            && (self.attribution_log_max_mib.is_some()
+                || self.attribution_log_files.is_some()
+                || self.attribution_log_queue.is_some()
+                || self.attribution_log_models.is_some())
+        {
+            return Err(invalid(
+                "attribution_log",
+                "is unset, so the other attribution_log_* settings would do nothing; set it to a \
+                 file or \"stdout\""
+                    .into(),
+            ));
+        }
         if let Some(filter) = &self.log_filter
             && let Err(error) = tracing_subscriber::EnvFilter::try_new(filter)
         {
@@ -213,6 +273,19 @@ impl ConfigLayer {
             drain_timeout: self
                 .drain_timeout_ms
                 .map_or(defaults.drain_timeout, Duration::from_millis),
+            attribution_log: self.attribution_log.map(|path| LogSettings {
+                sink: if path == Path::new(STDOUT) {
+                    LogSink::Stdout
+                } else {
+                    LogSink::File(path)
+                },
+                max_bytes: self.attribution_log_max_mib.unwrap_or(LOG_MAX_MIB) * 1024 * 1024,
+                files: self.attribution_log_files.unwrap_or(LOG_FILES),
+                queue: self.attribution_log_queue.unwrap_or(LOG_QUEUE),
+                models: self
+                    .attribution_log_models
+                    .map(|models| models.into_iter().collect()),
+            }),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -252,6 +325,23 @@ impl Config {
             max_batch_instances: Some(self.max_batch_instances),
             max_stream_in_flight: Some(self.max_stream_in_flight),
             drain_timeout_ms: Some(self.drain_timeout.as_millis() as u64),
+            attribution_log: self.attribution_log.as_ref().map(|log| match &log.sink {
+                LogSink::Stdout => PathBuf::from(STDOUT),
+                LogSink::File(path) => path.clone(),
+            }),
+            attribution_log_max_mib: self
+                .attribution_log
+                .as_ref()
+                .map(|log| log.max_bytes / (1024 * 1024)),
+            attribution_log_files: self.attribution_log.as_ref().map(|log| log.files),
+            attribution_log_queue: self.attribution_log.as_ref().map(|log| log.queue),
+            attribution_log_models: self.attribution_log.as_ref().and_then(|log| {
+                log.models.as_ref().map(|models| {
+                    let mut models: Vec<String> = models.iter().cloned().collect();
+                    models.sort();
+                    models
+                })
+            }),
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -303,6 +393,9 @@ mod tests {
             max_batch_instances: Some(10),
             max_stream_in_flight: Some(3),
             drain_timeout_ms: Some(1500),
+            attribution_log: Some("/var/log/apportion/attributions.jsonl".into()),
+            attribution_log_files: Some(7),
+            attribution_log_models: Some(vec!["b".into(), "a".into()]),
             ..ConfigLayer::default()
         }
         .resolve()
@@ -319,6 +412,9 @@ mod tests {
         assert_eq!(again.max_batch_instances, 10);
         assert_eq!(again.max_stream_in_flight, 3);
         assert_eq!(again.drain_timeout, Duration::from_millis(1500));
+        assert_eq!(again.attribution_log, config.attribution_log);
+        let log = again.attribution_log.unwrap();
+        assert_eq!((log.files, log.max_bytes), (7, 64 << 20));
     }
 
     #[test]
@@ -418,6 +514,21 @@ mod tests {
                     ..ConfigLayer::default()
                 },
                 "log_filter",
+            ),
+            (
+                ConfigLayer {
+                    attribution_log_files: Some(3),
+                    ..ConfigLayer::default()
+                },
+                "attribution_log",
+            ),
+            (
+                ConfigLayer {
+                    attribution_log: Some("stdout".into()),
+                    attribution_log_files: Some(0),
+                    ..ConfigLayer::default()
+                },
+                "attribution_log_files",
             ),
         ];
         for (layer, key) in invalid {

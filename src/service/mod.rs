@@ -5,6 +5,7 @@
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
 
+mod attribution_log;
 mod attributions;
 pub mod auth;
 pub mod config;
@@ -18,6 +19,7 @@ pub mod server;
 pub mod status;
 pub mod stream;
 
+pub use attribution_log::{LogSettings, LogSink};
 pub use config::{ConfigError, ConfigLayer};
 pub use pool::ComputePool;
 pub use server::{Config, State, run};

@@ -13,6 +13,7 @@ use tonic::Status;
 use tonic::codegen::http;
 use tonic::metadata::MetadataMap;
 
+use super::attribution_log::{AttributionLog, LogSettings};
 use super::attributions::AttributionsService;
 use super::auth::{Access, Tokens};
 use super::diagnostics::DiagnosticsService;
@@ -77,6 +78,8 @@ pub struct Config {
     /// How long calls in flight may take to finish once the server is
     /// asked to stop; computations still running then are cancelled.
     pub drain_timeout: Duration,
+    /// Where every explanation answered OK is logged; `None`: nowhere.
+    pub attribution_log: Option<LogSettings>,
 }
 
 impl Default for Config {
@@ -101,6 +104,7 @@ impl Default for Config {
             // Inside Kubernetes' default 30 s grace period, with room for
             // the cancelled computations to answer.
             drain_timeout: Duration::from_secs(20),
+            attribution_log: None,
         }
     }
 }
@@ -124,6 +128,7 @@ pub(super) struct Shared {
     /// The calls in flight, and whether the server is draining.
     pub(super) drain: Arc<Drain>,
     pub(super) drain_timeout: Duration,
+    pub(super) log: Option<AttributionLog>,
 }
 
 impl Shared {
@@ -175,10 +180,16 @@ impl State {
                 None
             }
         };
+        let log = match &config.attribution_log {
+            Some(settings) => {
+                Some(AttributionLog::open(settings).map_err(ServiceError::AttributionLog)?)
+            }
+            None => None,
+        };
         let mut state = State::new(Arc::new(registry), config);
-        Arc::get_mut(&mut state.shared)
-            .expect("the state is not shared yet")
-            .tokens = tokens;
+        let shared = Arc::get_mut(&mut state.shared).expect("the state is not shared yet");
+        shared.tokens = tokens;
+        shared.log = log;
         Ok((state, problems))
     }
 
@@ -201,6 +212,7 @@ impl State {
                 tokens: None,
                 drain: Arc::new(Drain::default()),
                 drain_timeout: config.drain_timeout,
+                log: None,
             }),
             max_message_bytes: config.max_message_bytes,
         }
@@ -343,6 +355,9 @@ pub async fn run(
     tokio::select! {
         served = &mut server => served?,
         () = cut => tracing::warn!("calls still open after the drain; closing their connections"),
+    }
+    if let Some(log) = &shared.log {
+        log.close();
     }
     tracing::info!("gRPC server stopped");
     Ok(())

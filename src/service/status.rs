@@ -50,6 +50,9 @@ pub enum ServiceError {
     Reflection(#[from] tonic_reflection::server::Error),
     #[error("{0}")]
     Telemetry(#[from] crate::telemetry::TelemetryError),
+    /// The attribution log's file cannot be opened (at start only).
+    #[error("attribution_log: {0}")]
+    AttributionLog(std::io::Error),
     /// The token file cannot be used (at start only).
     #[error("tokens_file: {0}")]
     Tokens(#[from] super::auth::TokenFileError),
@@ -89,7 +92,8 @@ impl ServiceError {
             | ServiceError::Transport(_)
             | ServiceError::Reflection(_)
             | ServiceError::Telemetry(_)
-            | ServiceError::Tokens(_) => ErrorKind::Internal,
+            | ServiceError::Tokens(_)
+            | ServiceError::AttributionLog(_) => ErrorKind::Internal,
         }
     }
 }
