@@ -12,6 +12,7 @@
 //!   co-operative: synthetic applicants and the two models trained on them;
 //!   not part of the library proper.
 //! - [`client`]: the thin gRPC client behind `apportion models` and `explain`.
+//! - [`drift`]: attribution summaries over time windows and their drift.
 //! - [`reasons`]: attributions → principal reason statements.
 //! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
 //! - [`service`]: the gRPC API: conversions, error → status, handlers, `run`.
@@ -21,6 +22,7 @@
 pub mod client;
 #[cfg(feature = "demo")]
 pub mod demo;
+pub mod drift;
 pub mod engine;
 pub mod model;
 pub mod reasons;

@@ -194,6 +194,12 @@ struct ServeArgs {
     /// Log only these models' explanations (comma-separated ids) [default: every model].
     #[arg(long, env = "APPORTION_ATTRIBUTION_LOG_MODELS", value_delimiter = ',')]
     attribution_log_models: Option<Vec<String>>,
+    /// Length of the attribution-drift windows, in seconds [default: 3600].
+    #[arg(long, env = "APPORTION_DRIFT_WINDOW_SECONDS")]
+    drift_window_seconds: Option<u64>,
+    /// Attribution-drift windows kept per model version [default: 48].
+    #[arg(long, env = "APPORTION_DRIFT_WINDOWS")]
+    drift_windows: Option<usize>,
 }
 
 impl ServeArgs {
@@ -226,6 +232,8 @@ impl ServeArgs {
             attribution_log_files: self.attribution_log_files,
             attribution_log_queue: self.attribution_log_queue,
             attribution_log_models: self.attribution_log_models,
+            drift_window_seconds: self.drift_window_seconds,
+            drift_windows: self.drift_windows,
         };
         Ok(given.over(file).resolve()?)
     }

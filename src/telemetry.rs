@@ -34,6 +34,12 @@ pub const STREAM_IN_FLIGHT: &str = "apportion_stream_requests_in_flight";
 /// Instances and stream requests answered, by rpc (counter; an item with
 /// an error counts too).
 pub const ITEMS: &str = "apportion_items_total";
+/// Mean |attribution| per model and player over the last closed drift
+/// window (gauge).
+pub const ATTRIBUTION_MEAN_ABS: &str = "apportion_attribution_mean_abs";
+/// The last closed drift window's stability index against the earlier
+/// windows kept, per model and player (gauge).
+pub const ATTRIBUTION_STABILITY: &str = "apportion_attribution_stability_index";
 /// Attribution-log lines dropped because the writer's queue was full.
 pub const ATTRIBUTION_LOG_DROPPED: &str = "apportion_attribution_log_dropped_total";
 /// Attribution-log lines that could not be written, by step.
@@ -132,6 +138,14 @@ fn describe_metrics() {
     metrics::describe_gauge!(
         STREAM_IN_FLIGHT,
         "ExplainStream requests read and not yet handed to the transport"
+    );
+    metrics::describe_gauge!(
+        ATTRIBUTION_MEAN_ABS,
+        "mean |attribution| per model and player over the last closed drift window"
+    );
+    metrics::describe_gauge!(
+        ATTRIBUTION_STABILITY,
+        "stability index of the last closed drift window against the earlier ones, per model and player"
     );
     metrics::describe_counter!(
         ATTRIBUTION_LOG_DROPPED,

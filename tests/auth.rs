@@ -90,22 +90,24 @@ async fn every_role_and_rpc_gets_the_documented_status() {
     let mut registry = server.registry_client();
     let mut attributions = server.attributions_client();
     let mut diagnostics = proto::diagnostics_client::DiagnosticsClient::new(server.channel.clone());
+    let mut monitoring = proto::monitoring_client::MonitoringClient::new(server.channel.clone());
     registry
         .register_model(with_token(linear("shared"), Some(ADMIN)))
         .await
         .unwrap();
 
-    // (token, register, get, list, explain, echo, delete): the table in the
-    // README, "Running it in production".
+    // (token, register, get, list, explain, echo, drift, delete): the table
+    // in the README, "Running it in production". Drift finds answers: the
+    // admin's explain comes first.
     let ok = Code::Ok;
     let denied = Code::PermissionDenied;
     let unknown = Code::Unauthenticated;
     let table = [
-        (Some(ADMIN), [ok, ok, ok, ok, ok, ok]),
-        (Some(EXPLAIN), [denied, ok, ok, ok, ok, denied]),
-        (Some(MONITOR), [denied, ok, ok, denied, ok, denied]),
-        (Some("not-a-known-token-x"), [unknown; 6]),
-        (None, [unknown; 6]),
+        (Some(ADMIN), [ok, ok, ok, ok, ok, ok, ok]),
+        (Some(EXPLAIN), [denied, ok, ok, ok, ok, ok, denied]),
+        (Some(MONITOR), [denied, ok, ok, denied, ok, ok, denied]),
+        (Some("not-a-known-token-x"), [unknown; 7]),
+        (None, [unknown; 7]),
     ];
     for (round, (token, expected)) in table.into_iter().enumerate() {
         let id = format!("m{round}");
@@ -148,6 +150,17 @@ async fn every_role_and_rpc_gets_the_documented_status() {
                     .echo(with_token(
                         proto::EchoRequest {
                             payload: b"x".to_vec(),
+                        },
+                        token,
+                    ))
+                    .await,
+            ),
+            code(
+                monitoring
+                    .attribution_drift(with_token(
+                        proto::AttributionDriftRequest {
+                            model_id: "shared".into(),
+                            ..Default::default()
                         },
                         token,
                     ))

@@ -278,11 +278,13 @@ async fn explain_one(
     Ok(convert::explanation(&entry, &message, &answer, budget))
 }
 
-/// Offers an answer to the attribution log, if there is one.
+/// Keeps an answer given OK: offered to the attribution log, if there is
+/// one, and added to the drift windows.
 fn log(shared: &Shared, rpc: &'static str, explanation: &proto::Explanation) {
     if let Some(log) = &shared.log {
         log.record(rpc, explanation);
     }
+    super::monitoring::track(&shared.drift, explanation);
 }
 
 /// A computation cancelled because the server is stopping answers

@@ -25,6 +25,8 @@
 //! attribution_log_files = 4           # files kept, the current one included
 //! attribution_log_queue = 8192        # lines waiting for the writer; more are dropped
 //! attribution_log_models = ["screening"]  # unset: every model
+//! drift_window_seconds = 3600         # attribution-drift windows
+//! drift_windows = 48                  # windows kept per model version
 //! ```
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
@@ -75,6 +77,8 @@ pub struct ConfigLayer {
     pub attribution_log_files: Option<usize>,
     pub attribution_log_queue: Option<usize>,
     pub attribution_log_models: Option<Vec<String>>,
+    pub drift_window_seconds: Option<u64>,
+    pub drift_windows: Option<usize>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -145,6 +149,8 @@ impl ConfigLayer {
             attribution_log_files: self.attribution_log_files.or(lower.attribution_log_files),
             attribution_log_queue: self.attribution_log_queue.or(lower.attribution_log_queue),
             attribution_log_models: self.attribution_log_models.or(lower.attribution_log_models),
+            drift_window_seconds: self.drift_window_seconds.or(lower.drift_window_seconds),
+            drift_windows: self.drift_windows.or(lower.drift_windows),
         }
     }
 
@@ -204,6 +210,17 @@ impl ConfigLayer {
             return Err(invalid(
                 "max_stream_in_flight",
                 "must be at least 1 (a stream with no room would never be read)".into(),
+            ));
+        }
+        if self.drift_window_seconds == Some(0) {
+            return Err(invalid("drift_window_seconds", "must be at least 1".into()));
+        }
+        if let Some(windows) = self.drift_windows
+            && windows < 2
+        {
+            return Err(invalid(
+                "drift_windows",
+                format!("must be at least 2 (a recent window and a reference); got {windows}"),
             ));
         }
         if self.attribution_log_max_mib == Some(0) {
@@ -286,6 +303,10 @@ impl ConfigLayer {
                     .attribution_log_models
                     .map(|models| models.into_iter().collect()),
             }),
+            drift_window: self
+                .drift_window_seconds
+                .map_or(defaults.drift_window, Duration::from_secs),
+            drift_windows: self.drift_windows.unwrap_or(defaults.drift_windows),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -335,6 +356,8 @@ impl Config {
                 .map(|log| log.max_bytes / (1024 * 1024)),
             attribution_log_files: self.attribution_log.as_ref().map(|log| log.files),
             attribution_log_queue: self.attribution_log.as_ref().map(|log| log.queue),
+            drift_window_seconds: Some(self.drift_window.as_secs().max(1)),
+            drift_windows: Some(self.drift_windows),
             attribution_log_models: self.attribution_log.as_ref().and_then(|log| {
                 log.models.as_ref().map(|models| {
                     let mut models: Vec<String> = models.iter().cloned().collect();

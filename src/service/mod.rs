@@ -13,6 +13,7 @@ pub mod convert;
 pub mod deadline;
 mod diagnostics;
 mod drain;
+mod monitoring;
 pub mod pool;
 mod registry_api;
 pub mod server;

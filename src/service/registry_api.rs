@@ -54,8 +54,12 @@ impl RegistryService {
             return Err(ServiceError::invalid("model_id", "is required"));
         }
         let registry = self.shared.registry.clone();
+        let shared = self.shared.clone();
         let deleted = tokio::task::spawn_blocking(move || {
             let deleted = registry.delete(&request.model_id, request.version);
+            if deleted.is_ok() {
+                shared.drift.forget(&request.model_id, request.version);
+            }
             set_registered_models(&registry);
             deleted
         })

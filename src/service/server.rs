@@ -18,14 +18,17 @@ use super::attributions::AttributionsService;
 use super::auth::{Access, Tokens};
 use super::diagnostics::DiagnosticsService;
 use super::drain::{Drain, Flight};
+use super::monitoring::MonitoringService;
 use super::pool::ComputePool;
 use super::proto;
 use super::proto::attributions_server::AttributionsServer;
 use super::proto::diagnostics_server::DiagnosticsServer;
+use super::proto::monitoring_server::MonitoringServer;
 use super::proto::registry_server::RegistryServer;
 use super::registry_api::{RegistryService, set_registered_models};
 use super::status::{ServiceError, code_label, transport_status};
 use super::stream::StreamStats;
+use crate::drift::DriftTracker;
 use crate::registry::{LoadProblem, Registry};
 use crate::telemetry::{self, LogFormat};
 
@@ -80,6 +83,10 @@ pub struct Config {
     pub drain_timeout: Duration,
     /// Where every explanation answered OK is logged; `None`: nowhere.
     pub attribution_log: Option<LogSettings>,
+    /// Length of the attribution-drift windows.
+    pub drift_window: Duration,
+    /// Drift windows kept per model version (at least 2).
+    pub drift_windows: usize,
 }
 
 impl Default for Config {
@@ -105,6 +112,9 @@ impl Default for Config {
             // the cancelled computations to answer.
             drain_timeout: Duration::from_secs(20),
             attribution_log: None,
+            drift_window: Duration::from_secs(3600),
+            // Two days of hourly windows.
+            drift_windows: 48,
         }
     }
 }
@@ -129,6 +139,8 @@ pub(super) struct Shared {
     pub(super) drain: Arc<Drain>,
     pub(super) drain_timeout: Duration,
     pub(super) log: Option<AttributionLog>,
+    /// Every answer's attributions, in time windows.
+    pub(super) drift: DriftTracker,
 }
 
 impl Shared {
@@ -213,6 +225,10 @@ impl State {
                 drain: Arc::new(Drain::default()),
                 drain_timeout: config.drain_timeout,
                 log: None,
+                drift: DriftTracker::new(
+                    config.drift_window.as_millis() as u64,
+                    config.drift_windows,
+                ),
             }),
             max_message_bytes: config.max_message_bytes,
         }
@@ -305,6 +321,11 @@ pub async fn run(
     })
     .max_decoding_message_size(limit)
     .max_encoding_message_size(limit);
+    let monitoring = MonitoringServer::new(MonitoringService {
+        shared: shared.clone(),
+    })
+    .max_decoding_message_size(limit)
+    .max_encoding_message_size(limit);
 
     let (health_reporter, health) = tonic_health::server::health_reporter();
     set_health(&health_reporter, tonic_health::ServingStatus::Serving).await;
@@ -336,6 +357,7 @@ pub async fn run(
         .add_service(registry)
         .add_service(attributions)
         .add_service(diagnostics)
+        .add_service(monitoring)
         .serve_with_incoming_shutdown(
             // Without TCP_NODELAY a multi-frame response waits on the peer's
             // delayed ACK (about 40 ms per call on loopback).
@@ -384,6 +406,12 @@ async fn set_health(
     reporter
         .set_service_status(
             <DiagnosticsServer<DiagnosticsService> as tonic::server::NamedService>::NAME,
+            status,
+        )
+        .await;
+    reporter
+        .set_service_status(
+            <MonitoringServer<MonitoringService> as tonic::server::NamedService>::NAME,
             status,
         )
         .await;
