@@ -1,7 +1,7 @@
 //! The gRPC face of apportion: the generated API types, their conversion to
 //! registry and engine types, the error → status mapping, one file per
-//! service, the compute pool, deadlines, and the server that runs them with
-//! health and reflection.
+//! service, the compute pool, deadlines, TLS, and the server that runs them
+//! with health and reflection.
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
 
@@ -16,12 +16,14 @@ mod registry_api;
 pub mod server;
 pub mod status;
 pub mod stream;
+pub mod tls;
 
 pub use config::{ConfigError, ConfigLayer};
 pub use pool::ComputePool;
-pub use server::{Config, State, run};
+pub use server::{Config, Options, State, Transport, run, run_with};
 pub use status::{ServiceError, status_of};
 pub use stream::StreamStats;
+pub use tls::{ServerTls, TlsError, TlsFiles};
 
 /// Types and client/server stubs generated from
 /// `proto/apportion/v1/apportion.proto`.

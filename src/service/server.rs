@@ -1,6 +1,7 @@
 //! The gRPC server: configuration, the state the handlers share, and `run`,
 //! which serves every service (with health and reflection) on a listener
-//! the caller binds until the caller's shutdown future completes.
+//! the caller binds until the caller's shutdown future completes; `run_with`
+//! serves it over TLS, and can add a plaintext listener for health probes.
 
 use std::future::Future;
 use std::net::SocketAddr;
@@ -24,6 +25,7 @@ use super::proto::registry_server::RegistryServer;
 use super::registry_api::{RegistryService, set_registered_models};
 use super::status::{ServiceError, code_label, transport_status};
 use super::stream::StreamStats;
+use super::tls::{self, ServerTls, TlsFiles};
 use crate::registry::{LoadProblem, Registry};
 use crate::telemetry::{self, LogFormat};
 
@@ -73,6 +75,16 @@ pub struct Config {
     /// at once; the server reads the stream's next request only below it,
     /// so a slow reader holds at most this many answers in the server.
     pub max_stream_in_flight: usize,
+    /// The server's certificate and key, and the client CA for mutual TLS;
+    /// `None` serves plaintext, which the binary allows only with
+    /// `plaintext`.
+    pub tls: Option<TlsFiles>,
+    /// Serving without TLS was asked for explicitly; the binary refuses to
+    /// start with neither this nor `tls`, so plaintext is never an accident.
+    pub plaintext: bool,
+    /// A plaintext listener serving only `grpc.health.v1`, for probes that
+    /// cannot speak TLS (the kubelet's native gRPC probes).
+    pub health_address: Option<SocketAddr>,
 }
 
 impl Default for Config {
@@ -94,6 +106,9 @@ impl Default for Config {
             tokens_file: None,
             max_batch_instances: 1024,
             max_stream_in_flight: 16,
+            tls: None,
+            plaintext: false,
+            health_address: None,
         }
     }
 }
@@ -252,11 +267,43 @@ fn follow_status_table(
     http::Response::from_parts(parts, tonic::body::Body::new(body))
 }
 
-/// Serves every service (with health and reflection) on `listener` until
-/// `shutdown` completes; in-flight calls then finish before it returns.
+/// How the main listener is served.
+#[derive(Debug, Clone, Default)]
+pub enum Transport {
+    /// gRPC over plain TCP (HTTP/2 without TLS).
+    #[default]
+    Plaintext,
+    /// gRPC over TLS with this configuration, reloadable while serving.
+    Tls(Arc<ServerTls>),
+}
+
+/// What `run_with` serves beside the services themselves.
+#[derive(Debug, Default)]
+pub struct Options {
+    pub transport: Transport,
+    /// A plaintext listener serving only `grpc.health.v1`, with the same
+    /// statuses as the main listener's health service.
+    pub health_listener: Option<TcpListener>,
+}
+
+/// Serves every service (with health and reflection) on `listener` in
+/// plaintext until `shutdown` completes; in-flight calls then finish before
+/// it returns.
 pub async fn run(
     listener: TcpListener,
     state: State,
+    shutdown: impl Future<Output = ()> + Send,
+) -> Result<(), ServiceError> {
+    run_with(listener, state, Options::default(), shutdown).await
+}
+
+/// As [`run`], over the transport in `options`, and with the plaintext
+/// health listener if it has one; both stop when `shutdown` completes (or
+/// when either fails).
+pub async fn run_with(
+    listener: TcpListener,
+    state: State,
+    options: Options,
     shutdown: impl Future<Output = ()> + Send,
 ) -> Result<(), ServiceError> {
     let limit = state.max_message_bytes;
@@ -299,26 +346,79 @@ pub async fn run(
     let reflection_v1alpha = reflection().build_v1alpha()?;
 
     let address = listener.local_addr().ok();
+    let tls = match &options.transport {
+        Transport::Plaintext => "off",
+        Transport::Tls(tls) if tls.files().client_ca.is_some() => "mutual",
+        Transport::Tls(_) => "on",
+    };
     tracing::info!(
         ?address,
+        tls,
         models = shared.registry.list().len(),
         "serving gRPC"
     );
-    tonic::transport::Server::builder()
+    let router = tonic::transport::Server::builder()
         .layer(tower::util::MapResponseLayer::new(follow_status_table))
-        .add_service(health)
+        .add_service(health.clone())
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
         .add_service(registry)
         .add_service(attributions)
-        .add_service(diagnostics)
-        .serve_with_incoming_shutdown(
-            // Without TCP_NODELAY a multi-frame response waits on the peer's
-            // delayed ACK (about 40 ms per call on loopback).
-            tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
-            shutdown,
-        )
-        .await?;
+        .add_service(diagnostics);
+
+    // One shutdown for both listeners; if the main one fails, the sender
+    // is dropped and the health listener stops too.
+    let (stopping, stop) = tokio::sync::watch::channel(false);
+    let main_shutdown = async move {
+        shutdown.await;
+        let _ = stopping.send(true);
+    };
+    let main = async {
+        match options.transport {
+            Transport::Plaintext => {
+                router
+                    .serve_with_incoming_shutdown(
+                        // Without TCP_NODELAY a multi-frame response waits on
+                        // the peer's delayed ACK (about 40 ms per call on
+                        // loopback).
+                        tonic::transport::server::TcpIncoming::from(listener)
+                            .with_nodelay(Some(true)),
+                        main_shutdown,
+                    )
+                    .await
+            }
+            Transport::Tls(server_tls) => {
+                let (incoming, accepting) = tls::accept(listener, server_tls);
+                let served = router
+                    .serve_with_incoming_shutdown(incoming, main_shutdown)
+                    .await;
+                // It ends by itself once tonic drops `incoming`; this makes
+                // sure the port is released before `run_with` returns.
+                accepting.abort();
+                let _ = accepting.await;
+                served
+            }
+        }
+    };
+    let probes = async {
+        let Some(listener) = options.health_listener else {
+            return Ok(());
+        };
+        let mut stop = stop;
+        tracing::info!(address = ?listener.local_addr().ok(), "serving grpc.health.v1 in plaintext");
+        tonic::transport::Server::builder()
+            .add_service(health)
+            .serve_with_incoming_shutdown(
+                tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
+                async move {
+                    let _ = stop.wait_for(|stopping| *stopping).await;
+                },
+            )
+            .await
+    };
+    let (main, probes) = tokio::join!(main, probes);
+    main?;
+    probes?;
     tracing::info!("gRPC server stopped");
     Ok(())
 }
