@@ -219,6 +219,9 @@ struct ServeArgs {
     /// PEM CA certificates for mutual TLS: every client must present a certificate they signed [default: none].
     #[arg(long, env = "APPORTION_TLS_CLIENT_CA_FILE")]
     tls_client_ca_file: Option<PathBuf>,
+    /// How often the TLS files are checked for a change, in seconds; 0: only on SIGHUP [default: 5].
+    #[arg(long, env = "APPORTION_TLS_POLL_SECONDS")]
+    tls_poll_seconds: Option<u64>,
     /// Serve without TLS, on purpose (loopback, or behind a proxy or mesh that terminates TLS).
     #[arg(long, env = "APPORTION_PLAINTEXT")]
     plaintext: bool,
@@ -254,6 +257,7 @@ impl ServeArgs {
             tls_cert_file: self.tls_cert_file,
             tls_key_file: self.tls_key_file,
             tls_client_ca_file: self.tls_client_ca_file,
+            tls_poll_seconds: self.tls_poll_seconds,
             // An unset flag leaves the choice to the file.
             plaintext: self.plaintext.then_some(true),
             health_address: self.health_address,
@@ -437,7 +441,9 @@ fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
         }
         let transport = match tls {
             Some(tls) => {
-                tls.watch(TLS_POLL_INTERVAL);
+                if !config.tls_poll_interval.is_zero() {
+                    tls.watch(config.tls_poll_interval);
+                }
                 Transport::Tls(tls)
             }
             None => {
@@ -474,10 +480,6 @@ fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
         Ok(())
     })
 }
-
-/// How often the TLS files' modification times are compared; a changed
-/// certificate is served from the next poll on.
-const TLS_POLL_INTERVAL: std::time::Duration = apportion::service::tls::DEFAULT_POLL_INTERVAL;
 
 /// SIGHUP reloads the TLS files (without TLS it is logged and ignored, so
 /// a habitual `kill -HUP` never stops the server).

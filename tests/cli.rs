@@ -31,6 +31,7 @@ fn apportion() -> Command {
         "APPORTION_TLS_CERT_FILE",
         "APPORTION_TLS_KEY_FILE",
         "APPORTION_TLS_CLIENT_CA_FILE",
+        "APPORTION_TLS_POLL_SECONDS",
         "APPORTION_PLAINTEXT",
         "APPORTION_HEALTH_ADDRESS",
         "APPORTION_TLS_CA",

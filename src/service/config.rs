@@ -22,6 +22,7 @@
 //! tls_cert_file = "tls/tls.crt"       # PEM chain, the server's certificate first
 //! tls_key_file = "tls/tls.key"        # PEM key of that certificate
 //! tls_client_ca_file = "tls/ca.crt"   # mutual TLS: clients must present a certificate it signed
+//! tls_poll_seconds = 5                # how often the files are checked for a change; 0: SIGHUP only
 //! # plaintext = true                  # instead of the tls_* keys: serve without TLS, on purpose
 //! health_address = "0.0.0.0:8081"     # plaintext grpc.health.v1 only, for probes
 //! ```
@@ -68,6 +69,7 @@ pub struct ConfigLayer {
     pub tls_cert_file: Option<PathBuf>,
     pub tls_key_file: Option<PathBuf>,
     pub tls_client_ca_file: Option<PathBuf>,
+    pub tls_poll_seconds: Option<u64>,
     pub plaintext: Option<bool>,
     pub health_address: Option<SocketAddr>,
 }
@@ -136,6 +138,7 @@ impl ConfigLayer {
             tls_cert_file: self.tls_cert_file.or(lower.tls_cert_file),
             tls_key_file: self.tls_key_file.or(lower.tls_key_file),
             tls_client_ca_file: self.tls_client_ca_file.or(lower.tls_client_ca_file),
+            tls_poll_seconds: self.tls_poll_seconds.or(lower.tls_poll_seconds),
             plaintext: self.plaintext.or(lower.plaintext),
             health_address: self.health_address.or(lower.health_address),
         }
@@ -233,6 +236,9 @@ impl ConfigLayer {
                 .max_stream_in_flight
                 .unwrap_or(defaults.max_stream_in_flight),
             tls: None,
+            tls_poll_interval: self
+                .tls_poll_seconds
+                .map_or(defaults.tls_poll_interval, Duration::from_secs),
             plaintext: self.plaintext.unwrap_or(false),
             health_address: self.health_address.or(defaults.health_address),
             ..defaults
@@ -340,6 +346,7 @@ impl Config {
             tls_cert_file: self.tls.as_ref().map(|tls| tls.cert.clone()),
             tls_key_file: self.tls.as_ref().map(|tls| tls.key.clone()),
             tls_client_ca_file: self.tls.as_ref().and_then(|tls| tls.client_ca.clone()),
+            tls_poll_seconds: Some(self.tls_poll_interval.as_secs()),
             plaintext: Some(self.plaintext),
             health_address: self.health_address,
         };

@@ -79,6 +79,9 @@ pub struct Config {
     /// `None` serves plaintext, which the binary allows only with
     /// `plaintext`.
     pub tls: Option<TlsFiles>,
+    /// How often the TLS files are checked for a change; zero: only on
+    /// SIGHUP.
+    pub tls_poll_interval: Duration,
     /// Serving without TLS was asked for explicitly; the binary refuses to
     /// start with neither this nor `tls`, so plaintext is never an accident.
     pub plaintext: bool,
@@ -107,6 +110,7 @@ impl Default for Config {
             max_batch_instances: 1024,
             max_stream_in_flight: 16,
             tls: None,
+            tls_poll_interval: tls::DEFAULT_POLL_INTERVAL,
             plaintext: false,
             health_address: None,
         }

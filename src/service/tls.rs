@@ -26,6 +26,7 @@ use rustls::crypto::CryptoProvider;
 use rustls::pki_types::pem::PemObject;
 use rustls::pki_types::{CertificateDer, PrivateKeyDer};
 use rustls::server::WebPkiClientVerifier;
+use sha2::{Digest, Sha256};
 
 use crate::telemetry;
 
@@ -34,7 +35,7 @@ use crate::telemetry;
 /// that idle sockets do not pile up (common practice, no source).
 pub const DEFAULT_HANDSHAKE_TIMEOUT: Duration = Duration::from_secs(10);
 
-/// How often the files' modification times are compared by default.
+/// How often the files are compared with what was loaded, by default.
 pub const DEFAULT_POLL_INTERVAL: Duration = Duration::from_secs(5);
 
 /// Handshakes in progress at once; a connection over it is closed at once
@@ -121,9 +122,11 @@ impl TlsStats {
     }
 }
 
-/// The modification time and length of each file as last read; a change
-/// in either (or a file appearing or vanishing) triggers a reload.
-type Stamps = Vec<Option<(SystemTime, u64)>>;
+/// The modification time and content digest of each file as last read; a
+/// change in either (or a file appearing or vanishing) triggers a reload.
+/// The digest catches a replacement within the file system's timestamp
+/// granularity (certificates of one shape often have the same length).
+type Stamps = Vec<Option<(SystemTime, [u8; 32])>>;
 
 /// The server's TLS configuration, swapped whole on reload: connections
 /// accepted after a reload use the new one, those already open keep theirs.
@@ -249,9 +252,9 @@ fn stamps(files: &TlsFiles) -> Stamps {
     let stamp = |path: &Path| {
         // `metadata` follows symbolic links, so a Kubernetes Secret volume
         // (which swaps a link to a new folder) is seen to change.
-        std::fs::metadata(path)
-            .and_then(|m| Ok((m.modified()?, m.len())))
-            .ok()
+        let modified = std::fs::metadata(path).and_then(|m| m.modified()).ok()?;
+        let digest: [u8; 32] = Sha256::digest(std::fs::read(path).ok()?).into();
+        Some((modified, digest))
     };
     let mut all = vec![stamp(&files.cert), stamp(&files.key)];
     if let Some(ca) = &files.client_ca {
