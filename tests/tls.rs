@@ -101,10 +101,15 @@ struct TlsServer {
 }
 
 async fn start(tls: ServerTls) -> TlsServer {
+    start_with_tokens(tls, None).await
+}
+
+async fn start_with_tokens(tls: ServerTls, tokens_file: Option<&Path>) -> TlsServer {
     let data = tempfile::tempdir().unwrap();
     let config = Config {
         data_dir: Some(data.path().to_path_buf()),
         compute_threads: 2,
+        tokens_file: tokens_file.map(Path::to_path_buf),
         ..Config::default()
     };
     let (state, _) = State::open(&config).unwrap();
@@ -641,4 +646,104 @@ async fn the_binary_serves_tls_and_reloads_on_sighup() {
     }
     assert!(tls_echo(address, &old_ca.pem(), None).await.is_err());
     drop(child);
+}
+
+#[tokio::test]
+async fn the_thin_client_speaks_mutual_tls_and_sends_its_token() {
+    let dir = tempfile::tempdir().unwrap();
+    let ca = Authority::new("apportion test CA");
+    let clients = Authority::new("apportion client CA");
+    let files = write_server_files(dir.path(), &ca, Some(&clients));
+    let token = "thin-client-admin-token";
+    let tokens = dir.path().join("tokens");
+    std::fs::write(
+        &tokens,
+        format!("{} admin thin-client\n", apportion::service::auth::digest_line(token)),
+    )
+    .unwrap();
+    let server = start_with_tokens(ServerTls::load(files).unwrap(), Some(&tokens)).await;
+    let (cert, key) = clients.leaf(false);
+    let ca_file = dir.path().join("server-ca.crt");
+    let cert_file = dir.path().join("client.crt");
+    let key_file = dir.path().join("client.key");
+    std::fs::write(&ca_file, ca.pem()).unwrap();
+    std::fs::write(&cert_file, cert).unwrap();
+    std::fs::write(&key_file, key).unwrap();
+    let model = dir.path().join("model.json");
+    std::fs::write(
+        &model,
+        serde_json::json!({
+            "model_id": "thin-tls",
+            "features": [{"name": "a"}, {"name": "b"}],
+            "model": {"kind": "linear", "weights": [1.0, 2.0], "intercept": 0.0},
+            "background": [[0.0, 1.0], [2.0, 3.0]],
+        })
+        .to_string(),
+    )
+    .unwrap();
+
+    let address = server.address.to_string();
+    let run = |args: Vec<std::ffi::OsString>, token: Option<&str>| {
+        let mut command = tokio::process::Command::new(env!("CARGO_BIN_EXE_apportion"));
+        for (variable, _) in std::env::vars_os() {
+            if variable.to_string_lossy().starts_with("APPORTION_") {
+                command.env_remove(variable);
+            }
+        }
+        if let Some(token) = token {
+            command.env("APPORTION_TOKEN", token);
+        }
+        command.args(args);
+        async move {
+            let output = tokio::time::timeout(PATIENCE, command.output())
+                .await
+                .expect("the client finishes")
+                .unwrap();
+            (
+                output.status.success(),
+                String::from_utf8_lossy(&output.stdout).into_owned(),
+                String::from_utf8_lossy(&output.stderr).into_owned(),
+            )
+        }
+    };
+    let flags = |command: &str, tls: &[(&str, &Path)]| {
+        let mut args: Vec<std::ffi::OsString> =
+            vec![command.into(), "--address".into(), address.clone().into()];
+        for (flag, path) in tls {
+            args.push(flag.into());
+            args.push(path.into());
+        }
+        if command == "register" {
+            args.push("--model".into());
+            args.push(model.clone().into());
+        }
+        args
+    };
+    let full = [
+        ("--tls-ca", ca_file.as_path()),
+        ("--tls-cert", cert_file.as_path()),
+        ("--tls-key", key_file.as_path()),
+    ];
+
+    let (ok, stdout, stderr) = run(flags("register", &full), Some(token)).await;
+    assert!(ok, "{stdout}{stderr}");
+    let (ok, stdout, stderr) = run(flags("models", &full), Some(token)).await;
+    assert!(ok && stdout.contains("\"thin-tls\""), "{stdout}{stderr}");
+
+    // Without the token: UNAUTHENTICATED (auth.rs), and the token never
+    // shows in what the client prints.
+    let (ok, _, stderr) = run(flags("models", &full), None).await;
+    assert!(!ok);
+    assert!(stderr.contains("authorization: send `Bearer TOKEN`"), "{stderr}");
+    let (ok, _, stderr) = run(flags("models", &full), Some("wrong-token")).await;
+    assert!(!ok && !stderr.contains("wrong-token"), "{stderr}");
+    // Without a client certificate the server refuses the handshake.
+    let (ok, _, stderr) = run(flags("models", &full[..1]), Some(token)).await;
+    assert!(!ok, "{stderr}");
+    // Half an identity, and plaintext to the TLS port.
+    let (ok, _, stderr) = run(flags("models", &full[..2]), Some(token)).await;
+    assert!(!ok && stderr.contains("--tls-key"), "{stderr}");
+    let (ok, _, stderr) = run(flags("models", &[]), Some(token)).await;
+    assert!(!ok, "{stderr}");
+    server.stop().await;
 }
