@@ -42,9 +42,14 @@ pub struct Connection {
 pub struct Bearer(Option<MetadataValue<Ascii>>);
 
 impl tonic::service::Interceptor for Bearer {
-    fn call(&mut self, mut request: tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> {
+    fn call(
+        &mut self,
+        mut request: tonic::Request<()>,
+    ) -> Result<tonic::Request<()>, tonic::Status> {
         if let Some(value) = &self.0 {
-            request.metadata_mut().insert("authorization", value.clone());
+            request
+                .metadata_mut()
+                .insert("authorization", value.clone());
         }
         Ok(request)
     }
@@ -74,12 +79,19 @@ impl Connection {
                 read("--tls-key", key)?,
             )),
             (None, None) => None,
-            _ => return Err("--tls-cert and --tls-key go together (a certificate and its key)".into()),
+            _ => {
+                return Err(
+                    "--tls-cert and --tls-key go together (a certificate and its key)".into(),
+                );
+            }
         };
         let scheme = self.address.split_once("://").map(|(scheme, _)| scheme);
         let Some(ca) = &self.tls_ca else {
             if identity.is_some() {
-                return Err("--tls-cert needs --tls-ca (the CA that signed the server's certificate)".into());
+                return Err(
+                    "--tls-cert needs --tls-ca (the CA that signed the server's certificate)"
+                        .into(),
+                );
             }
             if scheme == Some("https") {
                 return Err(format!(
@@ -105,7 +117,8 @@ impl Connection {
             }
             None => format!("https://{}", self.address),
         };
-        let mut tls = ClientTlsConfig::new().ca_certificate(Certificate::from_pem(read("--tls-ca", ca)?));
+        let mut tls =
+            ClientTlsConfig::new().ca_certificate(Certificate::from_pem(read("--tls-ca", ca)?));
         if let Some(identity) = identity {
             tls = tls.identity(identity);
         }
@@ -133,7 +146,9 @@ impl Connection {
         let mut endpoint = Channel::from_shared(uri.clone())
             .map_err(|e| format!("{}: not an address: {e}", self.address))?;
         if let Some(tls) = tls {
-            endpoint = endpoint.tls_config(tls).map_err(|e| format!("{uri}: {}", causes(&e)))?;
+            endpoint = endpoint
+                .tls_config(tls)
+                .map_err(|e| format!("{uri}: {}", causes(&e)))?;
         }
         let channel = endpoint
             .connect()

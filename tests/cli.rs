@@ -82,7 +82,13 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     )
     .unwrap();
     let output = apportion()
-        .args(["serve", "--print-config", "--plaintext", "--compute-threads", "1"])
+        .args([
+            "serve",
+            "--print-config",
+            "--plaintext",
+            "--compute-threads",
+            "1",
+        ])
         .args(["--max-evaluations", "99", "--max-stream-in-flight", "5"])
         .env("APPORTION_CONFIG", &file)
         .env("APPORTION_ADDRESS", "127.0.0.1:7002")

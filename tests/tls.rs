@@ -62,7 +62,11 @@ impl Authority {
         let mut params = CertificateParams::new(names).unwrap();
         params.distinguished_name.push(
             DnType::CommonName,
-            if server { "apportion test server" } else { "apportion test client" },
+            if server {
+                "apportion test server"
+            } else {
+                "apportion test client"
+            },
         );
         params.extended_key_usages = vec![if server {
             ExtendedKeyUsagePurpose::ServerAuth
@@ -324,7 +328,10 @@ async fn a_tls_call_is_answered_and_plaintext_and_untrusted_clients_are_refused(
     // The plaintext health listener answers SERVING, as the TLS port's own
     // health service does, and serves nothing else.
     let serving = tonic_health::pb::health_check_response::ServingStatus::Serving as i32;
-    assert_eq!(health_status(server.health_address, None).await, Ok(serving));
+    assert_eq!(
+        health_status(server.health_address, None).await,
+        Ok(serving)
+    );
     assert_eq!(
         health_status(server.address, Some(&ca.pem())).await,
         Ok(serving)
@@ -349,10 +356,8 @@ async fn mutual_tls_admits_only_clients_with_a_certificate_from_its_ca() {
     let ca = Authority::new("apportion test CA");
     let clients = Authority::new("apportion client CA");
     let stranger = Authority::new("another CA");
-    let server = start(
-        ServerTls::load(write_server_files(dir.path(), &ca, Some(&clients))).unwrap(),
-    )
-    .await;
+    let server =
+        start(ServerTls::load(write_server_files(dir.path(), &ca, Some(&clients))).unwrap()).await;
 
     // RFC 8446, section 4.4.2.4: a server that requires a client
     // certificate aborts the handshake when none is sent or it cannot be
@@ -443,7 +448,10 @@ async fn a_changed_file_is_reloaded_without_a_signal() {
     // Polled with a generous cap: the watcher's period is not under test.
     let started = Instant::now();
     while tls_echo(server.address, &new_ca.pem(), None).await.is_err() {
-        assert!(started.elapsed() < PATIENCE, "the change was never picked up");
+        assert!(
+            started.elapsed() < PATIENCE,
+            "the change was never picked up"
+        );
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
     assert_eq!(server.tls.stats().failed_reloads(), 0);
@@ -520,7 +528,13 @@ fn free_address() -> SocketAddr {
 
 fn serve_output(dir: &Path, extra: &[&str]) -> (bool, String) {
     let output = apportion()
-        .args(["serve", "--address", "127.0.0.1:0", "--metrics-address", "127.0.0.1:0"])
+        .args([
+            "serve",
+            "--address",
+            "127.0.0.1:0",
+            "--metrics-address",
+            "127.0.0.1:0",
+        ])
         .arg("--data-dir")
         .arg(dir.join("registry"))
         .args(extra)
@@ -551,7 +565,12 @@ fn the_binary_refuses_to_start_without_tls_or_plaintext_and_names_bad_files() {
     let cert = files.cert.to_str().unwrap();
     let (ok, stderr) = serve_output(
         dir.path(),
-        &["--tls-cert-file", cert, "--tls-key-file", missing.to_str().unwrap()],
+        &[
+            "--tls-cert-file",
+            cert,
+            "--tls-key-file",
+            missing.to_str().unwrap(),
+        ],
     );
     assert!(!ok);
     assert!(
@@ -658,7 +677,10 @@ async fn the_thin_client_speaks_mutual_tls_and_sends_its_token() {
     let tokens = dir.path().join("tokens");
     std::fs::write(
         &tokens,
-        format!("{} admin thin-client\n", apportion::service::auth::digest_line(token)),
+        format!(
+            "{} admin thin-client\n",
+            apportion::service::auth::digest_line(token)
+        ),
     )
     .unwrap();
     let server = start_with_tokens(ServerTls::load(files).unwrap(), Some(&tokens)).await;
@@ -734,7 +756,10 @@ async fn the_thin_client_speaks_mutual_tls_and_sends_its_token() {
     // shows in what the client prints.
     let (ok, _, stderr) = run(flags("models", &full), None).await;
     assert!(!ok);
-    assert!(stderr.contains("authorization: send `Bearer TOKEN`"), "{stderr}");
+    assert!(
+        stderr.contains("authorization: send `Bearer TOKEN`"),
+        "{stderr}"
+    );
     let (ok, _, stderr) = run(flags("models", &full), Some("wrong-token")).await;
     assert!(!ok && !stderr.contains("wrong-token"), "{stderr}");
     // Without a client certificate the server refuses the handshake.

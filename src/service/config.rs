@@ -264,7 +264,9 @@ impl ConfigLayer {
         {
             return Err(invalid(
                 "health_address",
-                format!("{health} is the gRPC address too; give the health listener a port of its own"),
+                format!(
+                    "{health} is the gRPC address too; give the health listener a port of its own"
+                ),
             ));
         }
         Ok(Config { tls, ..config })

@@ -232,7 +232,12 @@ impl ServerTls {
         })
     }
 
-    fn handshake_failed(&self, reason: &'static str, peer: SocketAddr, detail: &dyn std::fmt::Display) {
+    fn handshake_failed(
+        &self,
+        reason: &'static str,
+        peer: SocketAddr,
+        detail: &dyn std::fmt::Display,
+    ) {
         let counter = match reason {
             "timeout" => &self.stats.failed_timeout,
             "client_certificate" => &self.stats.failed_client_certificate,
@@ -328,14 +333,13 @@ fn build(files: &TlsFiles) -> Result<Arc<ServerConfig>, TlsError> {
             }
             // WebPKI path validation of the client's chain to these roots
             // (RFC 5280, section 6), as rustls does it.
-            let verifier =
-                WebPkiClientVerifier::builder_with_provider(Arc::new(roots), provider())
-                    .build()
-                    .map_err(|e| TlsError::Invalid {
-                        setting: "tls_client_ca_file",
-                        path: path.clone(),
-                        message: format!("cannot verify clients with it: {e}"),
-                    })?;
+            let verifier = WebPkiClientVerifier::builder_with_provider(Arc::new(roots), provider())
+                .build()
+                .map_err(|e| TlsError::Invalid {
+                    setting: "tls_client_ca_file",
+                    path: path.clone(),
+                    message: format!("cannot verify clients with it: {e}"),
+                })?;
             builder.with_client_cert_verifier(verifier)
         }
         None => builder.with_no_client_auth(),
