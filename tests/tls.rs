@@ -18,6 +18,7 @@ use apportion::service::proto::{
     attributions_client::AttributionsClient, diagnostics_client::DiagnosticsClient,
     registry_client::RegistryClient,
 };
+use apportion::service::tls::HandshakeFailure;
 use apportion::service::{Config, Options, ServerTls, State, TlsFiles, Transport, run_with};
 use rcgen::{
     BasicConstraints, CertificateParams, CertifiedIssuer, DnType, ExtendedKeyUsagePurpose, IsCa,
@@ -321,7 +322,7 @@ async fn a_tls_call_is_answered_and_plaintext_and_untrusted_clients_are_refused(
     );
     let stats = server.tls.clone();
     eventually("the plaintext client's handshake counted as failed", || {
-        stats.stats().handshake_failures("protocol") >= 1
+        stats.stats().handshake_failures(HandshakeFailure::Protocol) >= 1
     })
     .await;
 
@@ -377,7 +378,10 @@ async fn mutual_tls_admits_only_clients_with_a_certificate_from_its_ca() {
     );
     let stats = server.tls.clone();
     eventually("both refused clients counted", || {
-        stats.stats().handshake_failures("client_certificate") >= 2
+        stats
+            .stats()
+            .handshake_failures(HandshakeFailure::ClientCertificate)
+            >= 2
     })
     .await;
     server.stop().await;
@@ -480,7 +484,13 @@ async fn a_silent_peer_neither_blocks_accepting_nor_stays_forever() {
     .await;
     let silent = TcpStream::connect(patient.address).unwrap();
     assert!(tls_echo(patient.address, &ca.pem(), None).await.is_ok());
-    assert_eq!(patient.tls.stats().handshake_failures("timeout"), 0);
+    assert_eq!(
+        patient
+            .tls
+            .stats()
+            .handshake_failures(HandshakeFailure::Timeout),
+        0
+    );
     drop(silent);
     patient.stop().await;
 
@@ -494,7 +504,7 @@ async fn a_silent_peer_neither_blocks_accepting_nor_stays_forever() {
     let silent = TcpStream::connect(strict.address).unwrap();
     let stats = strict.tls.clone();
     eventually("the silent peer timed out", || {
-        stats.stats().handshake_failures("timeout") == 1
+        stats.stats().handshake_failures(HandshakeFailure::Timeout) == 1
     })
     .await;
     silent.set_read_timeout(Some(PATIENCE)).unwrap();

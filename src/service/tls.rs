@@ -77,15 +77,44 @@ pub enum TlsError {
     },
 }
 
+/// Why a handshake failed; the connection is dropped in every case.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum HandshakeFailure {
+    /// No handshake within the timeout (a slow or silent peer).
+    Timeout,
+    /// Mutual TLS: no client certificate, or one that does not chain to
+    /// the client CA.
+    ClientCertificate,
+    /// Anything else: a plaintext client, a client that refused the
+    /// server's certificate, no common protocol version or ALPN.
+    Protocol,
+    /// More handshakes in progress than the server allows at once.
+    Overload,
+}
+
+impl HandshakeFailure {
+    /// The `reason` label of `apportion_tls_handshake_failures_total`.
+    pub fn label(self) -> &'static str {
+        match self {
+            HandshakeFailure::Timeout => "timeout",
+            HandshakeFailure::ClientCertificate => "client_certificate",
+            HandshakeFailure::Protocol => "protocol",
+            HandshakeFailure::Overload => "overload",
+        }
+    }
+
+    fn index(self) -> usize {
+        self as usize
+    }
+}
+
 /// What the TLS layer has done since start, for tests and for operators'
 /// questions that the Prometheus counters also answer.
 #[derive(Debug, Default)]
 pub struct TlsStats {
     handshakes: AtomicU64,
-    failed_timeout: AtomicU64,
-    failed_client_certificate: AtomicU64,
-    failed_protocol: AtomicU64,
-    refused_overload: AtomicU64,
+    /// By [`HandshakeFailure`], in its order.
+    failures: [AtomicU64; 4],
     reloads: AtomicU64,
     failed_reloads: AtomicU64,
 }
@@ -96,19 +125,9 @@ impl TlsStats {
         self.handshakes.load(Ordering::Relaxed)
     }
 
-    /// Handshakes that failed, by the reason label of
-    /// `apportion_tls_handshake_failures_total`: `timeout`,
-    /// `client_certificate`, `protocol` (anything else, such as a
-    /// plaintext client) or `overload`.
-    pub fn handshake_failures(&self, reason: &str) -> u64 {
-        let counter = match reason {
-            "timeout" => &self.failed_timeout,
-            "client_certificate" => &self.failed_client_certificate,
-            "protocol" => &self.failed_protocol,
-            "overload" => &self.refused_overload,
-            _ => return 0,
-        };
-        counter.load(Ordering::Relaxed)
+    /// Handshakes that failed for `reason`.
+    pub fn handshake_failures(&self, reason: HandshakeFailure) -> u64 {
+        self.failures[reason.index()].load(Ordering::Relaxed)
     }
 
     /// Reloads that replaced the configuration.
@@ -234,21 +253,16 @@ impl ServerTls {
 
     fn handshake_failed(
         &self,
-        reason: &'static str,
+        reason: HandshakeFailure,
         peer: SocketAddr,
         detail: &dyn std::fmt::Display,
     ) {
-        let counter = match reason {
-            "timeout" => &self.stats.failed_timeout,
-            "client_certificate" => &self.stats.failed_client_certificate,
-            "overload" => &self.stats.refused_overload,
-            _ => &self.stats.failed_protocol,
-        };
-        counter.fetch_add(1, Ordering::Relaxed);
-        metrics::counter!(telemetry::TLS_HANDSHAKE_FAILURES, "reason" => reason).increment(1);
+        self.stats.failures[reason.index()].fetch_add(1, Ordering::Relaxed);
+        let label = reason.label();
+        metrics::counter!(telemetry::TLS_HANDSHAKE_FAILURES, "reason" => label).increment(1);
         // Debug only: any peer can cause these, so at a higher level they
         // would let anyone flood the log.
-        tracing::debug!(%peer, reason, %detail, "TLS handshake failed");
+        tracing::debug!(%peer, reason = label, %detail, "TLS handshake failed");
     }
 }
 
@@ -358,8 +372,8 @@ fn build(files: &TlsFiles) -> Result<Arc<ServerConfig>, TlsError> {
     Ok(Arc::new(config))
 }
 
-/// Why a handshake failed, as the failure counter labels it.
-fn failure_reason(error: &io::Error) -> &'static str {
+/// Why a handshake failed, from the TLS library's error.
+fn failure_reason(error: &io::Error) -> HandshakeFailure {
     let rustls_error = error
         .get_ref()
         .and_then(|inner| inner.downcast_ref::<rustls::Error>());
@@ -368,8 +382,8 @@ fn failure_reason(error: &io::Error) -> &'static str {
             rustls::Error::NoCertificatesPresented
             | rustls::Error::InvalidCertificate(_)
             | rustls::Error::InvalidCertRevocationList(_),
-        ) => "client_certificate",
-        _ => "protocol",
+        ) => HandshakeFailure::ClientCertificate,
+        _ => HandshakeFailure::Protocol,
     }
 }
 
@@ -401,7 +415,11 @@ pub(super) fn accept(listener: TcpListener, tls: Arc<ServerTls>) -> (Incoming, J
                 () = ready.closed() => return,
             };
             let Ok(permit) = pending.clone().try_acquire_owned() else {
-                tls.handshake_failed("overload", peer, &"too many handshakes in progress");
+                tls.handshake_failed(
+                    HandshakeFailure::Overload,
+                    peer,
+                    &"too many handshakes in progress",
+                );
                 continue;
             };
             // Without TCP_NODELAY a multi-frame response waits on the peer's
@@ -420,7 +438,7 @@ pub(super) fn accept(listener: TcpListener, tls: Arc<ServerTls>) -> (Incoming, J
                     }
                     Ok(Err(error)) => tls.handshake_failed(failure_reason(&error), peer, &error),
                     Err(_) => tls.handshake_failed(
-                        "timeout",
+                        HandshakeFailure::Timeout,
                         peer,
                         &format_args!("no handshake within {:?}", tls.handshake_timeout),
                     ),
