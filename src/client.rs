@@ -17,8 +17,8 @@ use crate::service::proto::{
 pub type Failure = Box<dyn std::error::Error + Send + Sync>;
 
 /// How the client reaches a server: its address, the TLS to speak, and the
-/// bearer token to send.
-#[derive(Debug, Clone, Default)]
+/// bearer token to send (never shown by `Debug`).
+#[derive(Clone, Default)]
 pub struct Connection {
     /// `HOST:PORT`, or a URI with `http://` or `https://`.
     pub address: String,
@@ -34,6 +34,19 @@ pub struct Connection {
     pub tls_server_name: Option<String>,
     /// Sent as `authorization: Bearer TOKEN` with every call.
     pub token: Option<String>,
+}
+
+impl std::fmt::Debug for Connection {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Connection")
+            .field("address", &self.address)
+            .field("tls_ca", &self.tls_ca)
+            .field("tls_cert", &self.tls_cert)
+            .field("tls_key", &self.tls_key)
+            .field("tls_server_name", &self.tls_server_name)
+            .field("token", &self.token.as_ref().map(|_| "(set)"))
+            .finish()
+    }
 }
 
 /// Adds the bearer token, if any, to every call (what
@@ -889,6 +902,93 @@ pub fn read_instances(path: &Path) -> Result<Vec<Vec<f64>>, Failure> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn tls_flags_that_cannot_work_are_refused_naming_the_flag() {
+        // Common practice, no source: a client certificate needs its key and
+        // a CA to check the server against; https needs that CA too.
+        let dir = tempfile::tempdir().unwrap();
+        let pem = dir.path().join("x.pem");
+        std::fs::write(&pem, "-----BEGIN CERTIFICATE-----\n").unwrap();
+        let base = Connection::plaintext("127.0.0.1:50051");
+        let cases = [
+            (
+                Connection {
+                    tls_cert: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "--tls-key",
+            ),
+            (
+                Connection {
+                    tls_cert: Some(pem.clone()),
+                    tls_key: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "--tls-ca",
+            ),
+            (
+                Connection {
+                    address: "https://127.0.0.1:50051".into(),
+                    ..base.clone()
+                },
+                "--tls-ca",
+            ),
+            (
+                Connection {
+                    address: "http://127.0.0.1:50051".into(),
+                    tls_ca: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "https",
+            ),
+            (
+                Connection {
+                    tls_ca: Some(dir.path().join("absent.pem")),
+                    ..base.clone()
+                },
+                "absent.pem",
+            ),
+            (
+                Connection {
+                    token: Some("bad\ntoken".into()),
+                    ..base.clone()
+                },
+                "--token",
+            ),
+        ];
+        for (connection, named) in cases {
+            let error = match connection.endpoint() {
+                Err(error) => error.to_string(),
+                Ok(_) => connection
+                    .bearer()
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default(),
+            };
+            assert!(error.contains(named), "{connection:?}: {error:?}");
+            assert!(
+                !error.contains("bad\ntoken"),
+                "the token is not echoed: {error}"
+            );
+        }
+        let secret = Connection {
+            token: Some("s3cret".into()),
+            ..base.clone()
+        };
+        assert!(!format!("{secret:?}").contains("s3cret"), "{secret:?}");
+        let (uri, tls) = Connection {
+            tls_ca: Some(pem.clone()),
+            ..base.clone()
+        }
+        .endpoint()
+        .unwrap();
+        assert_eq!(uri, "https://127.0.0.1:50051");
+        assert!(tls.is_some());
+        let (uri, tls) = base.endpoint().unwrap();
+        assert_eq!(uri, "http://127.0.0.1:50051");
+        assert!(tls.is_none());
+    }
 
     #[test]
     fn rows_keep_their_line_numbers_labels_and_reasons() {

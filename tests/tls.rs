@@ -633,7 +633,7 @@ async fn the_binary_serves_tls_and_reloads_on_sighup() {
         &settings,
         format!(
             "address = \"{address}\"\nhealth_address = \"{health}\"\nmetrics_address = \"{}\"\n\
-             data_dir = \"registry\"\nlog_filter = \"warn\"\ntls_cert_file = \"tls.crt\"\n\
+             data_dir = \"registry\"\nlog_filter = \"error\"\ntls_cert_file = \"tls.crt\"\n\
              tls_key_file = \"tls.key\"\ntls_poll_seconds = 0\n",
             free_address()
         ),
@@ -774,6 +774,16 @@ async fn the_thin_client_speaks_mutual_tls_and_sends_its_token() {
     assert!(!ok && !stderr.contains("wrong-token"), "{stderr}");
     // Without a client certificate the server refuses the handshake.
     let (ok, _, stderr) = run(flags("models", &full[..1]), Some(token)).await;
+    assert!(!ok, "{stderr}");
+    // The name checked instead of the address's IP: the certificate's DNS
+    // name passes, another name does not.
+    let mut named = flags("models", &full);
+    named.extend(["--tls-server-name".into(), "localhost".into()]);
+    let (ok, _, stderr) = run(named, Some(token)).await;
+    assert!(ok, "{stderr}");
+    let mut misnamed = flags("models", &full);
+    misnamed.extend(["--tls-server-name".into(), "elsewhere.test".into()]);
+    let (ok, _, stderr) = run(misnamed, Some(token)).await;
     assert!(!ok, "{stderr}");
     // Half an identity, and plaintext to the TLS port.
     let (ok, _, stderr) = run(flags("models", &full[..2]), Some(token)).await;
