@@ -11,6 +11,9 @@ pub const REQUESTS: &str = "apportion_requests_total";
 /// Calls refused for their token, by reason (missing, malformed, unknown,
 /// role); never the token itself.
 pub const AUTH_FAILURES: &str = "apportion_auth_failures_total";
+/// TLS handshakes completed, each a connection handed to the gRPC server
+/// (counter); beside the failures, the share that fail.
+pub const TLS_HANDSHAKES: &str = "apportion_tls_handshakes_total";
 /// TLS handshakes that failed, by reason (timeout, client_certificate,
 /// protocol, overload); the connection was dropped (counter).
 pub const TLS_HANDSHAKE_FAILURES: &str = "apportion_tls_handshake_failures_total";
@@ -130,6 +133,7 @@ fn describe_metrics() {
         PANICS,
         "panics caught around computations and registrations, each answered INTERNAL"
     );
+    metrics::describe_counter!(TLS_HANDSHAKES, "TLS handshakes completed");
     metrics::describe_counter!(
         TLS_HANDSHAKE_FAILURES,
         "TLS handshakes that failed, by reason; the connection was dropped"

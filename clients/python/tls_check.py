@@ -204,6 +204,22 @@ def main():
         answer = echo(secure(tls_address, stranger[0].public_bytes(serialization.Encoding.PEM)))
         check("grpcio trusting another CA refuses the server", answer == grpc.StatusCode.UNAVAILABLE, str(answer))
 
+        # The client package's own TLS options: the CA as a path, and the
+        # name to check in place of the address's IP.
+        from apportion_client import Client
+        with Client(tls_address, timeout=TIMEOUT, root_certificates=paths["ca.crt"], server_name="localhost") as client:
+            listed = [m.model_id for m in client.models()]
+        check("the client package over TLS, checking the name localhost", listed == ["tls-linear"], str(listed))
+        try:
+            with Client(tls_address, timeout=TIMEOUT, root_certificates=paths["ca.crt"],
+                        server_name="elsewhere.test") as client:
+                client.models()
+            refused = None
+        except grpc.RpcError as error:
+            refused = error.code()
+        check("the client package refuses a certificate without the name it checks",
+              refused == grpc.StatusCode.UNAVAILABLE, str(refused))
+
         health_channel = grpc.insecure_channel(tls_health)
         status = health_pb2_grpc.HealthStub(health_channel).Check(health_pb2.HealthCheckRequest(service=""),
                                                                    timeout=TIMEOUT).status

@@ -433,6 +433,7 @@ pub(super) fn accept(listener: TcpListener, tls: Arc<ServerTls>) -> (Incoming, J
                 match tokio::time::timeout(tls.handshake_timeout, acceptor.accept(stream)).await {
                     Ok(Ok(stream)) => {
                         tls.stats.handshakes.fetch_add(1, Ordering::Relaxed);
+                        metrics::counter!(telemetry::TLS_HANDSHAKES).increment(1);
                         // Fails only once the server has stopped accepting.
                         let _ = ready.send(Ok(stream)).await;
                     }
