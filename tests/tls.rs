@@ -290,6 +290,7 @@ async fn a_tls_call_is_answered_and_plaintext_and_untrusted_clients_are_refused(
             attribution.value
         );
     }
+    assert!(server.tls.stats().handshakes() >= 1);
     // The certificate's DNS name is checked as well as its IP address.
     let by_name = tls_channel(server.address, &ca.pem(), None, Some("localhost"))
         .await
