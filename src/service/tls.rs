@@ -158,6 +158,10 @@ pub struct ServerTls {
     /// The files' stamps when a reload was last attempted, so a file that
     /// fails to load is not retried (and logged) on every poll.
     stamps: Mutex<Stamps>,
+    /// Changed stamps seen by the last poll and not yet acted on: a change
+    /// is reloaded once the files have stayed the same for one poll, so a
+    /// certificate and key written one after the other are read together.
+    settling: Mutex<Option<Stamps>>,
     handshake_timeout: Duration,
     stats: TlsStats,
 }
@@ -172,6 +176,7 @@ impl ServerTls {
             files,
             current: RwLock::new(config),
             stamps: Mutex::new(stamps),
+            settling: Mutex::new(None),
             handshake_timeout: DEFAULT_HANDSHAKE_TIMEOUT,
             stats: TlsStats::default(),
         })
@@ -228,15 +233,26 @@ impl ServerTls {
         }
     }
 
-    /// Reloads if any file changed since the last attempt; `None` if none did.
+    /// One poll: reloads if the files differ from the last attempt and
+    /// are as the previous poll saw them; `None` if nothing was reloaded.
     pub fn reload_if_changed(&self) -> Option<Result<(), TlsError>> {
         let now = stamps(&self.files);
-        let changed = *self.stamps.lock().unwrap_or_else(|p| p.into_inner()) != now;
-        changed.then(|| self.reload())
+        let mut settling = self.settling.lock().unwrap_or_else(|p| p.into_inner());
+        if *self.stamps.lock().unwrap_or_else(|p| p.into_inner()) == now {
+            *settling = None;
+            return None;
+        }
+        if settling.as_ref() != Some(&now) {
+            *settling = Some(now);
+            return None;
+        }
+        *settling = None;
+        drop(settling);
+        Some(self.reload())
     }
 
-    /// Compares the files' stamps every `every` and reloads on a change,
-    /// until the returned task is aborted. Reading a few KiB of PEM is
+    /// Polls the files every `every` ([`ServerTls::reload_if_changed`]) until the
+    /// returned task is aborted: a change is served within two polls. Reading a few KiB of PEM is
     /// quick enough to do on the runtime.
     pub fn watch(self: &Arc<Self>, every: Duration) -> JoinHandle<()> {
         let tls = self.clone();
