@@ -1,7 +1,10 @@
 //! Service throughput over loopback gRPC: requests per second and p50/p99
 //! latency of Explain beside the Echo RPC on the same server in the same
 //! run (the stack's limit); then explanations per second of 1,000 rows
-//! through unary calls, one ExplainBatch and one ExplainStream.
+//! through unary calls, one ExplainBatch and one ExplainStream. Echo and the
+//! logistic Explain also run over TLS on a second server (certificates made
+//! here with rcgen), and a last table times a new connection per call,
+//! plaintext and TLS (the handshake's cost).
 //!
 //! `cargo bench --bench service` (`-- --quick` for shorter rounds). Server
 //! and clients share this process and the machine's cores, as stated in the
@@ -16,12 +19,12 @@ use apportion::service::proto::{
     self, attributions_client::AttributionsClient, diagnostics_client::DiagnosticsClient,
     register_model_request::Model as ModelBody, registry_client::RegistryClient,
 };
-use apportion::service::{Config, State};
+use apportion::service::{Config, Options, ServerTls, State, TlsFiles, Transport};
 use ndarray::Array2;
 use prost::Message;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use tonic::transport::Channel;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig};
 
 const CHANNELS: usize = 4;
 const TASKS: usize = 16;
@@ -123,21 +126,27 @@ fn main() {
         let features: Vec<proto::Feature> = (0..20)
             .map(|j| proto::Feature { name: format!("x{j}"), ..Default::default() })
             .collect();
+        let linear_registration = proto::RegisterModelRequest {
+            model_id: "bench-linear".into(),
+            features,
+            model: Some(ModelBody::Linear(proto::LinearModel {
+                weights: (0..20).map(|_| rng.random_range(-1.0..1.0)).collect(),
+                intercept: 0.1,
+            })),
+            link: proto::Link::Logistic as i32,
+            background: Some(live::matrix(background.view())),
+            description: String::new(),
+            ..Default::default()
+        };
         registry
-            .register_model(proto::RegisterModelRequest {
-                model_id: "bench-linear".into(),
-                features,
-                model: Some(ModelBody::Linear(proto::LinearModel {
-                    weights: (0..20).map(|_| rng.random_range(-1.0..1.0)).collect(),
-                    intercept: 0.1,
-                })),
-                link: proto::Link::Logistic as i32,
-                background: Some(live::matrix(background.view())),
-                description: String::new(),
-                ..Default::default()
-            })
+            .register_model(linear_registration.clone())
             .await
             .expect("register linear");
+        let tls = TlsBench::start(&data_dir, &config).await;
+        RegistryClient::new(tls.channels[0].clone())
+            .register_model(linear_registration)
+            .await
+            .expect("register linear over TLS");
         // (b) The demo tree ensemble.
         let scenario = demo::scenario(7).expect("scenario");
         registry
@@ -184,11 +193,15 @@ fn main() {
         // and answer), half each way: the stack's limit at that message size.
         let sized = vec![7u8; linear_bytes / 2];
 
+        let plain = channels.as_slice();
+        let over_tls = tls.channels.as_slice();
         let cases = [
-            ("Echo (the stack's limit)", Call::Echo(b"ping".to_vec())),
-            ("Echo, as many bytes as the logistic call", Call::Echo(sized)),
-            ("Explain, 20-feature logistic, LINEAR_EXACT", Call::Explain(Box::new(linear_request))),
-            ("Explain, demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT", Call::Explain(Box::new(trees_request))),
+            ("Echo (the stack's limit)", Call::Echo(b"ping".to_vec()), plain),
+            ("Echo, as many bytes as the logistic call", Call::Echo(sized), plain),
+            ("Explain, 20-feature logistic, LINEAR_EXACT", Call::Explain(Box::new(linear_request.clone())), plain),
+            ("Explain, demo trees (100 trees, 8 players, 100 background rows), TREE_EXACT", Call::Explain(Box::new(trees_request)), plain),
+            ("Echo over TLS", Call::Echo(b"ping".to_vec()), over_tls),
+            ("Explain, 20-feature logistic, LINEAR_EXACT, over TLS", Call::Explain(Box::new(linear_request)), over_tls),
         ];
         println!("machine: {}", support::machine());
         println!(
@@ -198,13 +211,13 @@ fn main() {
         println!();
         println!("| case | requests/s | p50 ms | p99 ms | share of echo throughput |");
         println!("|---|---|---|---|---|");
-        for (_, call) in &cases {
-            measure(&channels, call, Duration::from_millis(300)).await;
+        for (_, call, over) in &cases {
+            measure(over, call, Duration::from_millis(300)).await;
         }
         let mut measured: Vec<Vec<Measured>> = cases.iter().map(|_| Vec::new()).collect();
         for _ in 0..rounds {
-            for ((_, call), results) in cases.iter().zip(&mut measured) {
-                results.push(measure(&channels, call, round).await);
+            for ((_, call, over), results) in cases.iter().zip(&mut measured) {
+                results.push(measure(over, call, round).await);
             }
         }
         let median = |results: &[Measured], field: fn(&Measured) -> f64| {
@@ -213,7 +226,7 @@ fn main() {
             values[values.len() / 2]
         };
         let echo_rate = median(&measured[0], |m| m.per_second);
-        for ((name, _), results) in cases.iter().zip(&measured) {
+        for ((name, _, _), results) in cases.iter().zip(&measured) {
             let rate = median(results, |m| m.per_second);
             println!(
                 "| {name} | {rate:.0} | {:.2} | {:.2} | {:.0}% |",
@@ -224,6 +237,9 @@ fn main() {
         }
         println!();
         bulk_table(&channels, &linear_rows(&mut rng), &scenario, rounds).await;
+        println!();
+        connection_table(address, &tls, if quick { 50 } else { 200 }).await;
+        tls.stop().await;
         let _ = stop.send(());
         let _ = server.await;
         let _ = std::fs::remove_dir_all(&data_dir);
@@ -397,4 +413,136 @@ async fn bulk_table(
             stream / unary
         );
     }
+}
+
+/// A second server over TLS (its own registry), with channels that trust
+/// its certificate.
+struct TlsBench {
+    address: std::net::SocketAddr,
+    client: ClientTlsConfig,
+    channels: Vec<Channel>,
+    stop: tokio::sync::oneshot::Sender<()>,
+    server: tokio::task::JoinHandle<Result<(), apportion::service::ServiceError>>,
+}
+
+impl TlsBench {
+    async fn start(data_dir: &std::path::Path, config: &Config) -> TlsBench {
+        let folder = data_dir.join("tls");
+        std::fs::create_dir_all(&folder).expect("tls folder");
+        let mut ca_params = rcgen::CertificateParams::new(Vec::<String>::new()).expect("params");
+        ca_params.is_ca = rcgen::IsCa::Ca(rcgen::BasicConstraints::Unconstrained);
+        let ca = rcgen::CertifiedIssuer::self_signed(
+            ca_params,
+            rcgen::KeyPair::generate().expect("key"),
+        )
+        .expect("CA");
+        let key = rcgen::KeyPair::generate().expect("key");
+        let cert = rcgen::CertificateParams::new(vec!["127.0.0.1".to_string()])
+            .expect("params")
+            .signed_by(&key, &ca)
+            .expect("server certificate");
+        let files = TlsFiles {
+            cert: folder.join("tls.crt"),
+            key: folder.join("tls.key"),
+            client_ca: None,
+        };
+        std::fs::write(&files.cert, cert.pem()).expect("write");
+        std::fs::write(&files.key, key.serialize_pem()).expect("write");
+        let config = Config {
+            data_dir: Some(data_dir.join("tls-registry")),
+            ..config.clone()
+        };
+        let (state, _) = State::open(&config).expect("registry");
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+            .await
+            .expect("bind");
+        let address = listener.local_addr().expect("address");
+        let options = Options {
+            transport: Transport::Tls(std::sync::Arc::new(
+                ServerTls::load(files).expect("TLS files"),
+            )),
+            health_listener: None,
+        };
+        let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
+        let server = tokio::spawn(apportion::service::run_with(
+            listener,
+            state,
+            options,
+            async {
+                let _ = stopped.await;
+            },
+        ));
+        let client = ClientTlsConfig::new().ca_certificate(Certificate::from_pem(ca.pem()));
+        let mut channels = Vec::new();
+        for _ in 0..CHANNELS {
+            channels.push(tls_connect(address, &client).await);
+        }
+        TlsBench {
+            address,
+            client,
+            channels,
+            stop,
+            server,
+        }
+    }
+
+    async fn stop(self) {
+        drop(self.channels);
+        let _ = self.stop.send(());
+        let _ = self.server.await;
+    }
+}
+
+async fn tls_connect(address: std::net::SocketAddr, client: &ClientTlsConfig) -> Channel {
+    Channel::from_shared(format!("https://{address}"))
+        .expect("uri")
+        .tls_config(client.clone())
+        .expect("tls config")
+        .connect()
+        .await
+        .expect("connect over TLS")
+}
+
+/// A new connection for each call, one after another: what a client that
+/// does not keep its connection pays, plaintext and with the TLS handshake.
+async fn connection_table(plain: std::net::SocketAddr, tls: &TlsBench, calls: usize) {
+    async fn once(channel: Channel) {
+        DiagnosticsClient::new(channel)
+            .echo(proto::EchoRequest {
+                payload: b"ping".to_vec(),
+            })
+            .await
+            .expect("echo");
+    }
+    let median = |mut times: Vec<Duration>| {
+        times.sort();
+        times[times.len() / 2].as_secs_f64() * 1e3
+    };
+    let mut plain_times = Vec::new();
+    let mut tls_times = Vec::new();
+    // Taking turns, as the other tables do.
+    for _ in 0..calls {
+        let started = Instant::now();
+        let channel = Channel::from_shared(format!("http://{plain}"))
+            .expect("uri")
+            .connect()
+            .await
+            .expect("connect");
+        once(channel).await;
+        plain_times.push(started.elapsed());
+        let started = Instant::now();
+        once(tls_connect(tls.address, &tls.client).await).await;
+        tls_times.push(started.elapsed());
+    }
+    let (plain, over_tls) = (median(plain_times), median(tls_times));
+    println!("new connection per call, one at a time; medians of {calls} calls");
+    println!();
+    println!("| connect + one Echo | median ms |");
+    println!("|---|---|");
+    println!("| plaintext | {plain:.3} |");
+    println!("| TLS 1.3 (ECDSA P-256 certificate, ring) | {over_tls:.3} |");
+    println!(
+        "| TLS handshake, the difference | {:.3} |",
+        over_tls - plain
+    );
 }

@@ -6,7 +6,9 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 use serde_json::{Value, json};
-use tonic::transport::Channel;
+use tonic::metadata::{Ascii, MetadataValue};
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 
 use crate::service::proto::{
     self, attributions_client::AttributionsClient, registry_client::RegistryClient,
@@ -14,13 +16,170 @@ use crate::service::proto::{
 
 pub type Failure = Box<dyn std::error::Error + Send + Sync>;
 
-async fn connect(address: &str) -> Result<Channel, Failure> {
-    let endpoint = if address.contains("://") {
-        address.to_string()
-    } else {
-        format!("http://{address}")
-    };
-    Ok(Channel::from_shared(endpoint)?.connect().await?)
+/// How the client reaches a server: its address, the TLS to speak, and the
+/// bearer token to send (never shown by `Debug`).
+#[derive(Clone, Default)]
+pub struct Connection {
+    /// `HOST:PORT`, or a URI with `http://` or `https://`.
+    pub address: String,
+    /// PEM CA certificates the server's certificate must chain to; with
+    /// them the client speaks TLS (`https`).
+    pub tls_ca: Option<PathBuf>,
+    /// PEM client certificate chain and its key, for a server that asks
+    /// for one (mutual TLS).
+    pub tls_cert: Option<PathBuf>,
+    pub tls_key: Option<PathBuf>,
+    /// The name the server's certificate must carry, when the address
+    /// does not say it (an IP address, a load balancer's name).
+    pub tls_server_name: Option<String>,
+    /// Sent as `authorization: Bearer TOKEN` with every call.
+    pub token: Option<String>,
+}
+
+impl std::fmt::Debug for Connection {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Connection")
+            .field("address", &self.address)
+            .field("tls_ca", &self.tls_ca)
+            .field("tls_cert", &self.tls_cert)
+            .field("tls_key", &self.tls_key)
+            .field("tls_server_name", &self.tls_server_name)
+            .field("token", &self.token.as_ref().map(|_| "(set)"))
+            .finish()
+    }
+}
+
+/// Adds the bearer token, if any, to every call (what
+/// `service::auth` checks).
+#[derive(Clone)]
+pub struct Bearer(Option<MetadataValue<Ascii>>);
+
+impl tonic::service::Interceptor for Bearer {
+    fn call(
+        &mut self,
+        mut request: tonic::Request<()>,
+    ) -> Result<tonic::Request<()>, tonic::Status> {
+        if let Some(value) = &self.0 {
+            request
+                .metadata_mut()
+                .insert("authorization", value.clone());
+        }
+        Ok(request)
+    }
+}
+
+/// A channel with the token attached, as the generated clients take it.
+pub type Connected = InterceptedService<Channel, Bearer>;
+
+impl Connection {
+    /// A plaintext connection to `address` with no token.
+    pub fn plaintext(address: impl Into<String>) -> Connection {
+        Connection {
+            address: address.into(),
+            ..Connection::default()
+        }
+    }
+
+    /// The endpoint URI and TLS settings, checked before any connection is
+    /// tried; each problem names its flag.
+    fn endpoint(&self) -> Result<(String, Option<ClientTlsConfig>), Failure> {
+        let read = |flag: &str, path: &Path| {
+            std::fs::read(path).map_err(|e| format!("{flag} {}: cannot read: {e}", path.display()))
+        };
+        let identity = match (&self.tls_cert, &self.tls_key) {
+            (Some(cert), Some(key)) => Some(Identity::from_pem(
+                read("--tls-cert", cert)?,
+                read("--tls-key", key)?,
+            )),
+            (None, None) => None,
+            _ => {
+                return Err(
+                    "--tls-cert and --tls-key go together (a certificate and its key)".into(),
+                );
+            }
+        };
+        let scheme = self.address.split_once("://").map(|(scheme, _)| scheme);
+        let Some(ca) = &self.tls_ca else {
+            if identity.is_some() {
+                return Err(
+                    "--tls-cert needs --tls-ca (the CA that signed the server's certificate)"
+                        .into(),
+                );
+            }
+            if scheme == Some("https") {
+                return Err(format!(
+                    "{}: https needs --tls-ca (the CA that signed the server's certificate)",
+                    self.address
+                )
+                .into());
+            }
+            let uri = match scheme {
+                Some(_) => self.address.clone(),
+                None => format!("http://{}", self.address),
+            };
+            return Ok((uri, None));
+        };
+        let uri = match scheme {
+            Some("https") => self.address.clone(),
+            Some(other) => {
+                return Err(format!(
+                    "{}: --tls-ca speaks TLS, so the scheme must be https, not {other}",
+                    self.address
+                )
+                .into());
+            }
+            None => format!("https://{}", self.address),
+        };
+        let mut tls =
+            ClientTlsConfig::new().ca_certificate(Certificate::from_pem(read("--tls-ca", ca)?));
+        if let Some(identity) = identity {
+            tls = tls.identity(identity);
+        }
+        if let Some(name) = &self.tls_server_name {
+            tls = tls.domain_name(name.clone());
+        }
+        Ok((uri, Some(tls)))
+    }
+
+    fn bearer(&self) -> Result<Bearer, Failure> {
+        match &self.token {
+            None => Ok(Bearer(None)),
+            // The token itself is never part of a message.
+            Some(token) => MetadataValue::try_from(format!("Bearer {}", token.trim()))
+                .map(|value| Bearer(Some(value)))
+                .map_err(|_| "--token: must be printable ASCII (it travels as a header)".into()),
+        }
+    }
+
+    /// Connects, saying why it could not: the whole chain of causes (a
+    /// refused certificate is several layers below "transport error").
+    pub async fn connect(&self) -> Result<Connected, Failure> {
+        let (uri, tls) = self.endpoint()?;
+        let bearer = self.bearer()?;
+        let mut endpoint = Channel::from_shared(uri.clone())
+            .map_err(|e| format!("{}: not an address: {e}", self.address))?;
+        if let Some(tls) = tls {
+            endpoint = endpoint
+                .tls_config(tls)
+                .map_err(|e| format!("{uri}: {}", causes(&e)))?;
+        }
+        let channel = endpoint
+            .connect()
+            .await
+            .map_err(|e| format!("{uri}: cannot connect: {}", causes(&e)))?;
+        Ok(InterceptedService::new(channel, bearer))
+    }
+}
+
+/// An error and its sources, joined with `: `.
+fn causes(error: &dyn std::error::Error) -> String {
+    let mut text = error.to_string();
+    let mut source = error.source();
+    while let Some(cause) = source {
+        text.push_str(&format!(": {cause}"));
+        source = cause.source();
+    }
+    text
 }
 
 /// What `models` and `register` print about one model version.
@@ -49,8 +208,8 @@ fn info_json(m: &proto::ModelInfo) -> Value {
 }
 
 /// Every registered model version, one JSON object each.
-pub async fn models(address: &str) -> Result<Vec<Value>, Failure> {
-    let mut registry = RegistryClient::new(connect(address).await?);
+pub async fn models(server: &Connection) -> Result<Vec<Value>, Failure> {
+    let mut registry = RegistryClient::new(server.connect().await?);
     let listed = registry
         .list_models(proto::ListModelsRequest {})
         .await?
@@ -347,10 +506,10 @@ pub fn registration(
 
 /// Registers one model version; the answer is what `models` prints of it.
 pub async fn register(
-    address: &str,
+    server: &Connection,
     request: proto::RegisterModelRequest,
 ) -> Result<Vec<Value>, Failure> {
-    let mut registry = RegistryClient::new(connect(address).await?);
+    let mut registry = RegistryClient::new(server.connect().await?);
     let info = registry.register_model(request).await?.into_inner();
     Ok(vec![info_json(&info)])
 }
@@ -465,7 +624,7 @@ impl Progress {
 /// Fails only when the stream itself fails (the server cannot be reached,
 /// or the call ends with an error status).
 pub async fn explain_rows(
-    address: &str,
+    server: &Connection,
     template: proto::ExplainRequest,
     input: &Path,
     rows: Vec<InputRow>,
@@ -497,7 +656,7 @@ pub async fn explain_rows(
             }
         }
     }
-    let mut attributions = AttributionsClient::new(connect(address).await?);
+    let mut attributions = AttributionsClient::new(server.connect().await?);
     // The request stream is fed from a small channel, so only what the
     // server's flow control lets through is encoded ahead.
     let (feed, fed) = tokio::sync::mpsc::channel(64);
@@ -743,6 +902,93 @@ pub fn read_instances(path: &Path) -> Result<Vec<Vec<f64>>, Failure> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn tls_flags_that_cannot_work_are_refused_naming_the_flag() {
+        // Common practice, no source: a client certificate needs its key and
+        // a CA to check the server against; https needs that CA too.
+        let dir = tempfile::tempdir().unwrap();
+        let pem = dir.path().join("x.pem");
+        std::fs::write(&pem, "-----BEGIN CERTIFICATE-----\n").unwrap();
+        let base = Connection::plaintext("127.0.0.1:50051");
+        let cases = [
+            (
+                Connection {
+                    tls_cert: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "--tls-key",
+            ),
+            (
+                Connection {
+                    tls_cert: Some(pem.clone()),
+                    tls_key: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "--tls-ca",
+            ),
+            (
+                Connection {
+                    address: "https://127.0.0.1:50051".into(),
+                    ..base.clone()
+                },
+                "--tls-ca",
+            ),
+            (
+                Connection {
+                    address: "http://127.0.0.1:50051".into(),
+                    tls_ca: Some(pem.clone()),
+                    ..base.clone()
+                },
+                "https",
+            ),
+            (
+                Connection {
+                    tls_ca: Some(dir.path().join("absent.pem")),
+                    ..base.clone()
+                },
+                "absent.pem",
+            ),
+            (
+                Connection {
+                    token: Some("bad\ntoken".into()),
+                    ..base.clone()
+                },
+                "--token",
+            ),
+        ];
+        for (connection, named) in cases {
+            let error = match connection.endpoint() {
+                Err(error) => error.to_string(),
+                Ok(_) => connection
+                    .bearer()
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default(),
+            };
+            assert!(error.contains(named), "{connection:?}: {error:?}");
+            assert!(
+                !error.contains("bad\ntoken"),
+                "the token is not echoed: {error}"
+            );
+        }
+        let secret = Connection {
+            token: Some("s3cret".into()),
+            ..base.clone()
+        };
+        assert!(!format!("{secret:?}").contains("s3cret"), "{secret:?}");
+        let (uri, tls) = Connection {
+            tls_ca: Some(pem.clone()),
+            ..base.clone()
+        }
+        .endpoint()
+        .unwrap();
+        assert_eq!(uri, "https://127.0.0.1:50051");
+        assert!(tls.is_some());
+        let (uri, tls) = base.endpoint().unwrap();
+        assert_eq!(uri, "http://127.0.0.1:50051");
+        assert!(tls.is_none());
+    }
 
     #[test]
     fn rows_keep_their_line_numbers_labels_and_reasons() {

@@ -4,12 +4,13 @@
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::sync::Arc;
 
 use apportion::client;
 #[cfg(feature = "demo")]
 use apportion::demo;
 use apportion::service::proto;
-use apportion::service::{self, Config, ConfigLayer, State};
+use apportion::service::{self, Config, ConfigLayer, Options, ServerTls, State, Transport};
 use apportion::telemetry::{self, LogFormat};
 use clap::{Parser, Subcommand};
 
@@ -40,15 +41,13 @@ enum Command {
     Serve(ServeArgs),
     /// List the models a server holds, one JSON object per version.
     Models {
-        /// The server's gRPC address.
-        #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
-        address: String,
+        #[command(flatten)]
+        server: ServerArgs,
     },
     /// Register a model from a JSON model file; prints the new version as JSON.
     Register {
-        /// The server's gRPC address.
-        #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
-        address: String,
+        #[command(flatten)]
+        server: ServerArgs,
         /// The model file: one JSON object (format in the README, beside the thin client).
         #[arg(long)]
         model: PathBuf,
@@ -68,11 +67,46 @@ enum Command {
     HashToken,
 }
 
+/// How the thin client reaches the server.
 #[derive(clap::Args)]
-struct ExplainArgs {
-    /// The server's gRPC address.
+struct ServerArgs {
+    /// The server's gRPC address (`HOST:PORT`; `https://…` with --tls-ca).
     #[arg(long, env = "APPORTION_ADDRESS", default_value = "127.0.0.1:50051")]
     address: String,
+    /// PEM CA certificates to trust for the server's certificate; with it the client speaks TLS.
+    #[arg(long, env = "APPORTION_TLS_CA")]
+    tls_ca: Option<PathBuf>,
+    /// PEM client certificate, for a server that requires one (mutual TLS; needs --tls-key).
+    #[arg(long, env = "APPORTION_TLS_CERT")]
+    tls_cert: Option<PathBuf>,
+    /// PEM private key of --tls-cert.
+    #[arg(long, env = "APPORTION_TLS_KEY")]
+    tls_key: Option<PathBuf>,
+    /// The name the server's certificate must carry, when the address does not say it.
+    #[arg(long, env = "APPORTION_TLS_SERVER_NAME")]
+    tls_server_name: Option<String>,
+    /// Bearer token sent with every call (prefer the environment variable: flags show in `ps`).
+    #[arg(long, env = "APPORTION_TOKEN", hide_env_values = true)]
+    token: Option<String>,
+}
+
+impl ServerArgs {
+    fn connection(&self) -> client::Connection {
+        client::Connection {
+            address: self.address.clone(),
+            tls_ca: self.tls_ca.clone(),
+            tls_cert: self.tls_cert.clone(),
+            tls_key: self.tls_key.clone(),
+            tls_server_name: self.tls_server_name.clone(),
+            token: self.token.clone(),
+        }
+    }
+}
+
+#[derive(clap::Args)]
+struct ExplainArgs {
+    #[command(flatten)]
+    server: ServerArgs,
     #[arg(long)]
     model_id: String,
     /// Model version; 0 is the latest.
@@ -200,6 +234,24 @@ struct ServeArgs {
     /// Attribution-drift windows kept per model version [default: 48].
     #[arg(long, env = "APPORTION_DRIFT_WINDOWS")]
     drift_windows: Option<usize>,
+    /// PEM certificate chain of the server, its own certificate first (TLS needs this, the key, or --plaintext).
+    #[arg(long, env = "APPORTION_TLS_CERT_FILE")]
+    tls_cert_file: Option<PathBuf>,
+    /// PEM private key of the server's certificate.
+    #[arg(long, env = "APPORTION_TLS_KEY_FILE")]
+    tls_key_file: Option<PathBuf>,
+    /// PEM CA certificates for mutual TLS: every client must present a certificate they signed [default: none].
+    #[arg(long, env = "APPORTION_TLS_CLIENT_CA_FILE")]
+    tls_client_ca_file: Option<PathBuf>,
+    /// How often the TLS files are checked for a change, in seconds; 0: only on SIGHUP [default: 5].
+    #[arg(long, env = "APPORTION_TLS_POLL_SECONDS")]
+    tls_poll_seconds: Option<u64>,
+    /// Serve without TLS, on purpose (loopback, or behind a proxy or mesh that terminates TLS).
+    #[arg(long, env = "APPORTION_PLAINTEXT")]
+    plaintext: bool,
+    /// Address of a plaintext listener serving only grpc.health.v1, for probes that cannot speak TLS [default: none].
+    #[arg(long, env = "APPORTION_HEALTH_ADDRESS")]
+    health_address: Option<SocketAddr>,
 }
 
 impl ServeArgs {
@@ -234,6 +286,13 @@ impl ServeArgs {
             attribution_log_models: self.attribution_log_models,
             drift_window_seconds: self.drift_window_seconds,
             drift_windows: self.drift_windows,
+            tls_cert_file: self.tls_cert_file,
+            tls_key_file: self.tls_key_file,
+            tls_client_ca_file: self.tls_client_ca_file,
+            tls_poll_seconds: self.tls_poll_seconds,
+            // An unset flag leaves the choice to the file.
+            plaintext: self.plaintext.then_some(true),
+            health_address: self.health_address,
         };
         Ok(given.over(file).resolve()?)
     }
@@ -244,16 +303,16 @@ fn main() -> ExitCode {
         #[cfg(feature = "demo")]
         Command::Demo { seed, exit } => run_demo(seed, exit),
         Command::Serve(args) => serve(args),
-        Command::Models { address } => run_client(client::models(&address)),
+        Command::Models { server } => run_client(client::models(&server.connection())),
         Command::HashToken => hash_token(),
         Command::Register {
-            address,
+            server,
             model,
             background,
             model_id,
         } => client::registration(&model, background.as_deref(), model_id.as_deref())
             .map_err(|e| e.to_string().into())
-            .and_then(|request| run_client(client::register(&address, request))),
+            .and_then(|request| run_client(client::register(&server.connection(), request))),
         Command::Explain(args) => return explain(&args),
     };
     match result {
@@ -300,7 +359,7 @@ fn explain(args: &ExplainArgs) -> ExitCode {
         let mut report = Reporter { terminal };
         let tally = runtime
             .block_on(client::explain_rows(
-                &args.address,
+                &args.server.connection(),
                 template,
                 &args.input,
                 rows,
@@ -400,22 +459,87 @@ fn serve(args: ServeArgs) -> Result<(), Box<dyn std::error::Error>> {
         print!("{}", config.to_toml());
         return Ok(());
     }
+    // Before anything else starts, so a bad file stops the server with
+    // nothing opened.
+    let tls = match &config.tls {
+        Some(files) => Some(Arc::new(ServerTls::load(files.clone())?)),
+        None => None,
+    };
     telemetry::init_tracing(config.log_format, &config.log_filter)?;
     let runtime = tokio::runtime::Runtime::new()?;
     runtime.block_on(async {
         if let Some(address) = config.metrics_address {
             telemetry::install_metrics(address)?;
         }
+        let transport = match tls {
+            Some(tls) => {
+                if !config.tls_poll_interval.is_zero() {
+                    tls.watch(config.tls_poll_interval);
+                }
+                Transport::Tls(tls)
+            }
+            None => {
+                tracing::warn!(
+                    "plaintext: TLS is off as configured; calls and bearer tokens travel in the clear, \
+                     so keep the port on loopback or behind a proxy or mesh that terminates TLS"
+                );
+                Transport::Plaintext
+            }
+        };
+        reload_on_hangup(&transport)?;
         let (state, problems) = State::open(&config)?;
         for problem in &problems {
             tracing::warn!(%problem, "registry entry skipped");
         }
-        let listener = tokio::net::TcpListener::bind(config.address).await?;
+        let listener = tokio::net::TcpListener::bind(config.address)
+            .await
+            .map_err(|e| format!("address {}: cannot listen: {e}", config.address))?;
+        let health_listener = match config.health_address {
+            Some(address) => Some(
+                tokio::net::TcpListener::bind(address)
+                    .await
+                    .map_err(|e| format!("health_address {address}: cannot listen: {e}"))?,
+            ),
+            None => None,
+        };
         tracing::info!(address = %listener.local_addr()?, "serving");
-        service::run(listener, state, stop_requested()).await?;
+        let options = Options {
+            transport,
+            health_listener,
+        };
+        service::run_with(listener, state, options, stop_requested()).await?;
         tracing::info!("stopped");
         Ok(())
     })
+}
+
+/// SIGHUP reloads the TLS files (without TLS it is logged and ignored, so
+/// a habitual `kill -HUP` never stops the server).
+fn reload_on_hangup(transport: &Transport) -> std::io::Result<()> {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{SignalKind, signal};
+        let mut hangups = signal(SignalKind::hangup())?;
+        let tls = match transport {
+            Transport::Tls(tls) => Some(tls.clone()),
+            Transport::Plaintext => None,
+        };
+        tokio::spawn(async move {
+            while hangups.recv().await.is_some() {
+                match &tls {
+                    Some(tls) => {
+                        tracing::info!("SIGHUP: reloading the TLS files");
+                        // The outcome is logged and counted by `reload`.
+                        let _ = tls.reload();
+                    }
+                    None => tracing::info!("SIGHUP: nothing to reload (plaintext)"),
+                }
+            }
+        });
+    }
+    #[cfg(not(unix))]
+    let _ = transport;
+    Ok(())
 }
 
 /// Completes on Ctrl-C (SIGINT) or SIGTERM, which service managers and

@@ -11,6 +11,15 @@ pub const REQUESTS: &str = "apportion_requests_total";
 /// Calls refused for their token, by reason (missing, malformed, unknown,
 /// role); never the token itself.
 pub const AUTH_FAILURES: &str = "apportion_auth_failures_total";
+/// TLS handshakes completed, each a connection handed to the gRPC server
+/// (counter); beside the failures, the share that fail.
+pub const TLS_HANDSHAKES: &str = "apportion_tls_handshakes_total";
+/// TLS handshakes that failed, by reason (timeout, client_certificate,
+/// protocol, overload); the connection was dropped (counter).
+pub const TLS_HANDSHAKE_FAILURES: &str = "apportion_tls_handshake_failures_total";
+/// Reloads of the TLS certificate, key and client CA, by outcome (ok,
+/// failed: the previous configuration stayed in use) (counter).
+pub const TLS_RELOADS: &str = "apportion_tls_reloads_total";
 /// Time from arrival to answer of successful Explain calls (histogram).
 pub const EXPLAIN_SECONDS: &str = "apportion_explain_seconds";
 /// Coalition values computed by Explain calls (counter).
@@ -133,6 +142,15 @@ fn describe_metrics() {
     metrics::describe_counter!(
         PANICS,
         "panics caught around computations and registrations, each answered INTERNAL"
+    );
+    metrics::describe_counter!(TLS_HANDSHAKES, "TLS handshakes completed");
+    metrics::describe_counter!(
+        TLS_HANDSHAKE_FAILURES,
+        "TLS handshakes that failed, by reason; the connection was dropped"
+    );
+    metrics::describe_counter!(
+        TLS_RELOADS,
+        "TLS configuration reloads by outcome; a failed one keeps the previous configuration"
     );
     metrics::describe_gauge!(REGISTERED_MODELS, "model versions registered");
     metrics::describe_gauge!(

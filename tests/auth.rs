@@ -211,6 +211,7 @@ fn a_token_file_with_a_bad_line_stops_the_server_naming_the_line() {
     let output = Command::new(env!("CARGO_BIN_EXE_apportion"))
         .args([
             "serve",
+            "--plaintext",
             "--address",
             "127.0.0.1:0",
             "--metrics-address",

@@ -27,6 +27,18 @@ fn apportion() -> Command {
         "APPORTION_MAX_COALITION_ROWS",
         "APPORTION_MAX_BATCH_INSTANCES",
         "APPORTION_MAX_STREAM_IN_FLIGHT",
+        "APPORTION_TOKENS_FILE",
+        "APPORTION_TLS_CERT_FILE",
+        "APPORTION_TLS_KEY_FILE",
+        "APPORTION_TLS_CLIENT_CA_FILE",
+        "APPORTION_TLS_POLL_SECONDS",
+        "APPORTION_PLAINTEXT",
+        "APPORTION_HEALTH_ADDRESS",
+        "APPORTION_TLS_CA",
+        "APPORTION_TLS_CERT",
+        "APPORTION_TLS_KEY",
+        "APPORTION_TLS_SERVER_NAME",
+        "APPORTION_TOKEN",
         "RUST_LOG",
     ] {
         command.env_remove(variable);
@@ -70,7 +82,13 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
     )
     .unwrap();
     let output = apportion()
-        .args(["serve", "--print-config", "--compute-threads", "1"])
+        .args([
+            "serve",
+            "--print-config",
+            "--plaintext",
+            "--compute-threads",
+            "1",
+        ])
         .args(["--max-evaluations", "99", "--max-stream-in-flight", "5"])
         .env("APPORTION_CONFIG", &file)
         .env("APPORTION_ADDRESS", "127.0.0.1:7002")
@@ -105,6 +123,7 @@ fn flags_beat_the_environment_which_beats_the_file_which_beats_the_defaults() {
         "default"
     );
     assert_eq!(printed["max_message_mib"].as_integer(), Some(64), "default");
+    assert_eq!(printed["plaintext"].as_bool(), Some(true), "flag");
 
     std::fs::write(&file, "compute_thread = 3\n").unwrap();
     let output = apportion()
@@ -138,6 +157,15 @@ fn the_shipped_settings_file_is_valid() {
     );
     assert_eq!(printed["max_batch_instances"].as_integer(), Some(1024));
     assert_eq!(printed["max_stream_in_flight"].as_integer(), Some(16));
+    assert_eq!(
+        printed["tls_cert_file"].as_str(),
+        Some("/etc/apportion/tls/tls.crt")
+    );
+    assert_eq!(
+        printed["tls_key_file"].as_str(),
+        Some("/etc/apportion/tls/tls.key")
+    );
+    assert_eq!(printed["plaintext"].as_bool(), Some(false));
 }
 
 /// A server started from a config file, killed when dropped.
@@ -153,7 +181,7 @@ impl Server {
         std::fs::write(
             &config,
             format!(
-                "address = \"{address}\"\nmetrics_address = \"{}\"\ndata_dir = \"registry\"\nlog_filter = \"warn\"\n",
+                "address = \"{address}\"\nmetrics_address = \"{}\"\ndata_dir = \"registry\"\nlog_filter = \"warn\"\nplaintext = true\n",
                 free_address()
             ),
         )

@@ -653,9 +653,8 @@ async fn model_info_says_what_was_imported_and_keeps_it_across_a_restart() {
     }
 
     // The thin client's `models` prints them for imported models only.
-    let printed = apportion::client::models(&server.address.to_string())
-        .await
-        .unwrap();
+    let connection = apportion::client::Connection::plaintext(server.address.to_string());
+    let printed = apportion::client::models(&connection).await.unwrap();
     for (id, format, objective, class) in &expected {
         let line = printed.iter().find(|m| m["model_id"] == *id).unwrap();
         if format.is_empty() {

@@ -44,7 +44,7 @@ fn start(dir: &Path) -> (Child, SocketAddr) {
         }
     }
     let child = command
-        .args(["serve", "--address", &address.to_string()])
+        .args(["serve", "--plaintext", "--address", &address.to_string()])
         .arg("--data-dir")
         .arg(dir)
         .args(["--metrics-address", &free_address().to_string()])

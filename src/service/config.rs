@@ -27,7 +27,16 @@
 //! attribution_log_models = ["screening"]  # unset: every model
 //! drift_window_seconds = 3600         # attribution-drift windows
 //! drift_windows = 48                  # windows kept per model version
+//! tls_cert_file = "tls/tls.crt"       # PEM chain, the server's certificate first
+//! tls_key_file = "tls/tls.key"        # PEM key of that certificate
+//! tls_client_ca_file = "tls/ca.crt"   # mutual TLS: clients must present a certificate it signed
+//! tls_poll_seconds = 5                # how often the files are checked for a change; 0: SIGHUP only
+//! # plaintext = true                  # instead of the tls_* keys: serve without TLS, on purpose
+//! health_address = "0.0.0.0:8081"     # plaintext grpc.health.v1 only, for probes
 //! ```
+//!
+//! The server needs either `tls_cert_file` with `tls_key_file`, or
+//! `plaintext = true`: it never falls back to plaintext by itself.
 //!
 //! An unknown key is an error, so a misspelt setting is never silently
 //! ignored.
@@ -40,6 +49,7 @@ use serde::{Deserialize, Serialize};
 
 use super::Config;
 use super::attribution_log::{LogSettings, LogSink};
+use super::tls::TlsFiles;
 use crate::engine::job::MAX_DRAWS;
 use crate::telemetry::LogFormat;
 
@@ -79,6 +89,12 @@ pub struct ConfigLayer {
     pub attribution_log_models: Option<Vec<String>>,
     pub drift_window_seconds: Option<u64>,
     pub drift_windows: Option<usize>,
+    pub tls_cert_file: Option<PathBuf>,
+    pub tls_key_file: Option<PathBuf>,
+    pub tls_client_ca_file: Option<PathBuf>,
+    pub tls_poll_seconds: Option<u64>,
+    pub plaintext: Option<bool>,
+    pub health_address: Option<SocketAddr>,
 }
 
 /// A setting that cannot be used, naming the file or key.
@@ -96,8 +112,8 @@ pub enum ConfigError {
 }
 
 impl ConfigLayer {
-    /// Reads a TOML file. A relative `data_dir` or `tokens_file` in it is taken from the
-    /// file's folder, so a file means the same from any working directory.
+    /// Reads a TOML file. A relative `data_dir`, `tokens_file` or `tls_*_file` in it is
+    /// taken from the file's folder, so a file means the same from any working directory.
     pub fn read(path: &Path) -> Result<ConfigLayer, ConfigError> {
         let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
             path: path.to_path_buf(),
@@ -112,6 +128,9 @@ impl ConfigLayer {
             &mut layer.data_dir,
             &mut layer.tokens_file,
             &mut layer.attribution_log,
+            &mut layer.tls_cert_file,
+            &mut layer.tls_key_file,
+            &mut layer.tls_client_ca_file,
         ] {
             if let Some(dir) = relative.as_ref()
                 && dir.is_relative()
@@ -151,6 +170,12 @@ impl ConfigLayer {
             attribution_log_models: self.attribution_log_models.or(lower.attribution_log_models),
             drift_window_seconds: self.drift_window_seconds.or(lower.drift_window_seconds),
             drift_windows: self.drift_windows.or(lower.drift_windows),
+            tls_cert_file: self.tls_cert_file.or(lower.tls_cert_file),
+            tls_key_file: self.tls_key_file.or(lower.tls_key_file),
+            tls_client_ca_file: self.tls_client_ca_file.or(lower.tls_client_ca_file),
+            tls_poll_seconds: self.tls_poll_seconds.or(lower.tls_poll_seconds),
+            plaintext: self.plaintext.or(lower.plaintext),
+            health_address: self.health_address.or(lower.health_address),
         }
     }
 
@@ -307,6 +332,12 @@ impl ConfigLayer {
                 .drift_window_seconds
                 .map_or(defaults.drift_window, Duration::from_secs),
             drift_windows: self.drift_windows.unwrap_or(defaults.drift_windows),
+            tls: None,
+            tls_poll_interval: self
+                .tls_poll_seconds
+                .map_or(defaults.tls_poll_interval, Duration::from_secs),
+            plaintext: self.plaintext.unwrap_or(false),
+            health_address: self.health_address.or(defaults.health_address),
             ..defaults
         };
         if config.default_budget > config.max_budget {
@@ -319,7 +350,73 @@ impl ConfigLayer {
                 ),
             ));
         }
-        Ok(config)
+        let tls = transport(
+            self.tls_cert_file,
+            self.tls_key_file,
+            self.tls_client_ca_file,
+            config.plaintext,
+        )?;
+        if let Some(health) = config.health_address
+            && health == config.address
+        {
+            return Err(invalid(
+                "health_address",
+                format!(
+                    "{health} is the gRPC address too; give the health listener a port of its own"
+                ),
+            ));
+        }
+        Ok(Config { tls, ..config })
+    }
+}
+
+/// The TLS files, or `None` for plaintext asked for explicitly: a
+/// certificate needs its key, a client CA needs both, and with neither
+/// files nor `plaintext` the server does not start, so it never serves
+/// plaintext by accident.
+fn transport(
+    cert: Option<PathBuf>,
+    key: Option<PathBuf>,
+    client_ca: Option<PathBuf>,
+    plaintext: bool,
+) -> Result<Option<TlsFiles>, ConfigError> {
+    let invalid = |key: &'static str, message: &str| ConfigError::Invalid {
+        key,
+        message: message.to_string(),
+    };
+    match (cert, key) {
+        (Some(cert), Some(key)) => {
+            if plaintext {
+                return Err(invalid(
+                    "plaintext",
+                    "set together with tls_cert_file and tls_key_file; choose one \
+                     (leave plaintext out to serve TLS)",
+                ));
+            }
+            Ok(Some(TlsFiles {
+                cert,
+                key,
+                client_ca,
+            }))
+        }
+        (Some(_), None) => Err(invalid(
+            "tls_key_file",
+            "missing: tls_cert_file is set, and the server needs the certificate's private key too",
+        )),
+        (None, Some(_)) => Err(invalid(
+            "tls_cert_file",
+            "missing: tls_key_file is set, and the server needs the key's certificate too",
+        )),
+        (None, None) if client_ca.is_some() => Err(invalid(
+            "tls_client_ca_file",
+            "needs tls_cert_file and tls_key_file: mutual TLS is TLS with client certificates",
+        )),
+        (None, None) if plaintext => Ok(None),
+        (None, None) => Err(invalid(
+            "tls_cert_file",
+            "no TLS configured: set tls_cert_file and tls_key_file (--tls-cert-file, \
+             --tls-key-file), or plaintext = true (--plaintext) to serve without TLS on purpose",
+        )),
     }
 }
 
@@ -365,6 +462,12 @@ impl Config {
                     models
                 })
             }),
+            tls_cert_file: self.tls.as_ref().map(|tls| tls.cert.clone()),
+            tls_key_file: self.tls.as_ref().map(|tls| tls.key.clone()),
+            tls_client_ca_file: self.tls.as_ref().and_then(|tls| tls.client_ca.clone()),
+            tls_poll_seconds: Some(self.tls_poll_interval.as_secs()),
+            plaintext: Some(self.plaintext),
+            health_address: self.health_address,
         };
         toml::to_string(&layer).expect("plain keys and values always serialise")
     }
@@ -393,6 +496,7 @@ mod tests {
         .unwrap();
         let flags = ConfigLayer {
             compute_threads: Some(1),
+            plaintext: Some(true),
             ..ConfigLayer::default()
         };
         let config = flags.over(file).resolve().unwrap();
@@ -419,6 +523,10 @@ mod tests {
             attribution_log: Some("/var/log/apportion/attributions.jsonl".into()),
             attribution_log_files: Some(7),
             attribution_log_models: Some(vec!["b".into(), "a".into()]),
+            tls_cert_file: Some("/etc/apportion/tls/tls.crt".into()),
+            tls_key_file: Some("/etc/apportion/tls/tls.key".into()),
+            tls_client_ca_file: Some("/etc/apportion/tls/ca.crt".into()),
+            health_address: Some("0.0.0.0:8081".parse().unwrap()),
             ..ConfigLayer::default()
         }
         .resolve()
@@ -438,6 +546,95 @@ mod tests {
         assert_eq!(again.attribution_log, config.attribution_log);
         let log = again.attribution_log.unwrap();
         assert_eq!((log.files, log.max_bytes), (7, 64 << 20));
+        assert_eq!(again.tls, config.tls);
+        assert_eq!(again.health_address, config.health_address);
+    }
+
+    #[test]
+    fn tls_files_are_taken_from_the_file_folder_and_must_come_in_pairs() {
+        // Common practice, no source: a certificate is useless without its
+        // key, and a server must not fall back to plaintext by itself.
+        let dir = tempfile::tempdir().unwrap();
+        let file = ConfigLayer::read(&write(
+            dir.path(),
+            "tls_cert_file = \"tls/tls.crt\"\ntls_key_file = \"/abs/tls.key\"\n",
+        ))
+        .unwrap();
+        let tls = file.resolve().unwrap().tls.unwrap();
+        assert_eq!(tls.cert, dir.path().join("tls/tls.crt"));
+        assert_eq!(tls.key, PathBuf::from("/abs/tls.key"));
+        assert_eq!(tls.client_ca, None);
+
+        let cert = || Some(PathBuf::from("c.pem"));
+        let key = || Some(PathBuf::from("k.pem"));
+        let refused = [
+            (ConfigLayer::default(), "tls_cert_file", "plaintext"),
+            (
+                ConfigLayer {
+                    plaintext: Some(false),
+                    ..ConfigLayer::default()
+                },
+                "tls_cert_file",
+                "plaintext",
+            ),
+            (
+                ConfigLayer {
+                    tls_cert_file: cert(),
+                    ..ConfigLayer::default()
+                },
+                "tls_key_file",
+                "tls_cert_file",
+            ),
+            (
+                ConfigLayer {
+                    tls_key_file: key(),
+                    ..ConfigLayer::default()
+                },
+                "tls_cert_file",
+                "tls_key_file",
+            ),
+            (
+                ConfigLayer {
+                    tls_client_ca_file: cert(),
+                    plaintext: Some(true),
+                    ..ConfigLayer::default()
+                },
+                "tls_client_ca_file",
+                "tls_cert_file",
+            ),
+            (
+                ConfigLayer {
+                    tls_cert_file: cert(),
+                    tls_key_file: key(),
+                    plaintext: Some(true),
+                    ..ConfigLayer::default()
+                },
+                "plaintext",
+                "tls_cert_file",
+            ),
+            (
+                ConfigLayer {
+                    plaintext: Some(true),
+                    address: Some("127.0.0.1:7000".parse().unwrap()),
+                    health_address: Some("127.0.0.1:7000".parse().unwrap()),
+                    ..ConfigLayer::default()
+                },
+                "health_address",
+                "127.0.0.1:7000",
+            ),
+        ];
+        for (layer, key, also) in refused {
+            let error = layer.resolve().unwrap_err().to_string();
+            assert!(error.starts_with(key), "{error}");
+            assert!(error.contains(also), "{error}");
+        }
+        let plaintext = ConfigLayer {
+            plaintext: Some(true),
+            ..ConfigLayer::default()
+        }
+        .resolve()
+        .unwrap();
+        assert!(plaintext.plaintext && plaintext.tls.is_none());
     }
 
     #[test]

@@ -1,7 +1,7 @@
 //! The gRPC face of apportion: the generated API types, their conversion to
 //! registry and engine types, the error → status mapping, one file per
-//! service, the compute pool, deadlines, draining, and the server that runs them with
-//! health and reflection.
+//! service, the compute pool, deadlines, draining, TLS, and the server that
+//! runs them with health and reflection.
 //!
 //! Protobuf types stop here; nothing below this module knows about them.
 
@@ -19,13 +19,15 @@ mod registry_api;
 pub mod server;
 pub mod status;
 pub mod stream;
+pub mod tls;
 
 pub use attribution_log::{LogSettings, LogSink};
 pub use config::{ConfigError, ConfigLayer};
 pub use pool::ComputePool;
-pub use server::{Config, State, run};
+pub use server::{Config, Options, State, Transport, run, run_with};
 pub use status::{ServiceError, status_of};
 pub use stream::StreamStats;
+pub use tls::{ServerTls, TlsError, TlsFiles};
 
 /// Types and client/server stubs generated from
 /// `proto/apportion/v1/apportion.proto`.

@@ -1,6 +1,7 @@
 //! The gRPC server: configuration, the state the handlers share, and `run`,
 //! which serves every service (with health and reflection) on a listener
-//! the caller binds until the caller's shutdown future completes.
+//! the caller binds until the caller's shutdown future completes; `run_with`
+//! serves it over TLS, and can add a plaintext listener for health probes.
 
 use std::future::Future;
 use std::net::SocketAddr;
@@ -28,6 +29,7 @@ use super::proto::registry_server::RegistryServer;
 use super::registry_api::{RegistryService, set_registered_models};
 use super::status::{ServiceError, code_label, transport_status};
 use super::stream::StreamStats;
+use super::tls::{self, ServerTls, TlsFiles};
 use crate::drift::DriftTracker;
 use crate::registry::{LoadProblem, Registry};
 use crate::telemetry::{self, LogFormat};
@@ -87,6 +89,19 @@ pub struct Config {
     pub drift_window: Duration,
     /// Drift windows kept per model version (at least 2).
     pub drift_windows: usize,
+    /// The server's certificate and key, and the client CA for mutual TLS;
+    /// `None` serves plaintext, which the binary allows only with
+    /// `plaintext`.
+    pub tls: Option<TlsFiles>,
+    /// How often the TLS files are checked for a change; zero: only on
+    /// SIGHUP.
+    pub tls_poll_interval: Duration,
+    /// Serving without TLS was asked for explicitly; the binary refuses to
+    /// start with neither this nor `tls`, so plaintext is never an accident.
+    pub plaintext: bool,
+    /// A plaintext listener serving only `grpc.health.v1`, for probes that
+    /// cannot speak TLS (the kubelet's native gRPC probes).
+    pub health_address: Option<SocketAddr>,
 }
 
 impl Default for Config {
@@ -115,6 +130,10 @@ impl Default for Config {
             drift_window: Duration::from_secs(3600),
             // Two days of hourly windows.
             drift_windows: 48,
+            tls: None,
+            tls_poll_interval: tls::DEFAULT_POLL_INTERVAL,
+            plaintext: false,
+            health_address: None,
         }
     }
 }
@@ -295,11 +314,43 @@ fn follow_status_table(
     http::Response::from_parts(parts, tonic::body::Body::new(body))
 }
 
-/// Serves every service (with health and reflection) on `listener` until
-/// `shutdown` completes and the server has drained (see [`drain`]).
+/// How the main listener is served.
+#[derive(Debug, Clone, Default)]
+pub enum Transport {
+    /// gRPC over plain TCP (HTTP/2 without TLS).
+    #[default]
+    Plaintext,
+    /// gRPC over TLS with this configuration, reloadable while serving.
+    Tls(Arc<ServerTls>),
+}
+
+/// What `run_with` serves beside the services themselves.
+#[derive(Debug, Default)]
+pub struct Options {
+    pub transport: Transport,
+    /// A plaintext listener serving only `grpc.health.v1`, with the same
+    /// statuses as the main listener's health service.
+    pub health_listener: Option<TcpListener>,
+}
+
+/// Serves every service (with health and reflection) on `listener` in
+/// plaintext until `shutdown` completes and the server has drained (see
+/// [`drain`]).
 pub async fn run(
     listener: TcpListener,
     state: State,
+    shutdown: impl Future<Output = ()> + Send,
+) -> Result<(), ServiceError> {
+    run_with(listener, state, Options::default(), shutdown).await
+}
+
+/// As [`run`], over the transport in `options`, and with the plaintext
+/// health listener if it has one; both stop when `shutdown` completes (or
+/// when either fails).
+pub async fn run_with(
+    listener: TcpListener,
+    state: State,
+    options: Options,
     shutdown: impl Future<Output = ()> + Send,
 ) -> Result<(), ServiceError> {
     let limit = state.max_message_bytes;
@@ -339,48 +390,105 @@ pub async fn run(
     let reflection_v1alpha = reflection().build_v1alpha()?;
 
     let address = listener.local_addr().ok();
+    let tls = match &options.transport {
+        Transport::Plaintext => "off",
+        Transport::Tls(tls) if tls.files().client_ca.is_some() => "mutual",
+        Transport::Tls(_) => "on",
+    };
     tracing::info!(
         ?address,
+        tls,
         models = shared.registry.list().len(),
         "serving gRPC"
     );
-    let (drained, drain_done) = tokio::sync::oneshot::channel();
-    let drained = async {
-        drain(&shared, &health_reporter, shutdown).await;
-        let _ = drained.send(());
-    };
-    let server = tonic::transport::Server::builder()
+    let router = tonic::transport::Server::builder()
         .layer(tower::util::MapResponseLayer::new(follow_status_table))
-        .add_service(health)
+        .add_service(health.clone())
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
         .add_service(registry)
         .add_service(attributions)
         .add_service(diagnostics)
-        .add_service(monitoring)
-        .serve_with_incoming_shutdown(
-            // Without TCP_NODELAY a multi-frame response waits on the peer's
-            // delayed ACK (about 40 ms per call on loopback).
-            tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
-            drained,
-        );
-    tokio::pin!(server);
-    // tonic then waits for every open call to end; one that never does (a
-    // health Watch, a stream whose client neither reads nor closes) must
-    // not keep the process from stopping.
+        .add_service(monitoring);
+
+    // One shutdown for both listeners: the main one drains first (the
+    // health listener keeps answering NOT_SERVING meanwhile); if the main
+    // one fails, the sender is dropped and the health listener stops too.
+    let (stopping, stop) = tokio::sync::watch::channel(false);
+    let (drained, drain_done) = tokio::sync::oneshot::channel();
+    let (draining, reporter) = (&shared, &health_reporter);
+    let main_shutdown = async move {
+        drain(draining, reporter, shutdown).await;
+        let _ = drained.send(());
+        let _ = stopping.send(true);
+    };
+    let serving = async {
+        match options.transport {
+            Transport::Plaintext => {
+                router
+                    .serve_with_incoming_shutdown(
+                        // Without TCP_NODELAY a multi-frame response waits on
+                        // the peer's delayed ACK (about 40 ms per call on
+                        // loopback).
+                        tonic::transport::server::TcpIncoming::from(listener)
+                            .with_nodelay(Some(true)),
+                        main_shutdown,
+                    )
+                    .await
+            }
+            Transport::Tls(server_tls) => {
+                let (incoming, accepting) = tls::accept(listener, server_tls);
+                let served = router
+                    .serve_with_incoming_shutdown(incoming, main_shutdown)
+                    .await;
+                // It ends by itself once tonic drops `incoming`; this makes
+                // sure the port is released before `run_with` returns.
+                accepting.abort();
+                let _ = accepting.await;
+                served
+            }
+        }
+    };
+    // After the drain tonic waits for every open call to end; one that
+    // never does (a health Watch, a stream whose client neither reads nor
+    // closes) must not keep the process from stopping.
     let cut = async {
         match drain_done.await {
             Ok(()) => tokio::time::sleep(CANCEL_GRACE).await,
             Err(_) => std::future::pending().await,
         }
     };
-    tokio::select! {
-        served = &mut server => served?,
-        () = cut => tracing::warn!("calls still open after the drain; closing their connections"),
-    }
+    let main = async {
+        tokio::select! {
+            served = serving => served,
+            () = cut => {
+                tracing::warn!("calls still open after the drain; closing their connections");
+                Ok(())
+            }
+        }
+    };
+    let probes = async {
+        let Some(listener) = options.health_listener else {
+            return Ok(());
+        };
+        let mut stop = stop;
+        tracing::info!(address = ?listener.local_addr().ok(), "serving grpc.health.v1 in plaintext");
+        tonic::transport::Server::builder()
+            .add_service(health)
+            .serve_with_incoming_shutdown(
+                tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true)),
+                async move {
+                    let _ = stop.wait_for(|stopping| *stopping).await;
+                },
+            )
+            .await
+    };
+    let (main, probes) = tokio::join!(main, probes);
     if let Some(log) = &shared.log {
         log.close();
     }
+    main?;
+    probes?;
     tracing::info!("gRPC server stopped");
     Ok(())
 }

@@ -56,6 +56,12 @@ pub enum ServiceError {
     /// The token file cannot be used (at start only).
     #[error("tokens_file: {0}")]
     Tokens(#[from] super::auth::TokenFileError),
+    /// A TLS file cannot be used (at start; a reload keeps the old files).
+    #[error("{0}")]
+    Tls(#[from] super::tls::TlsError),
+    /// A listener could not be set up.
+    #[error("{0}")]
+    Io(#[from] std::io::Error),
 }
 
 impl ServiceError {
@@ -93,7 +99,9 @@ impl ServiceError {
             | ServiceError::Reflection(_)
             | ServiceError::Telemetry(_)
             | ServiceError::Tokens(_)
-            | ServiceError::AttributionLog(_) => ErrorKind::Internal,
+            | ServiceError::AttributionLog(_)
+            | ServiceError::Tls(_)
+            | ServiceError::Io(_) => ErrorKind::Internal,
         }
     }
 }

@@ -2,7 +2,10 @@
 
     from apportion_client import Client
 
-    client = Client("127.0.0.1:50051")
+    client = Client("127.0.0.1:50051")                # plaintext (a server started with --plaintext)
+    client = Client("apportion.internal:50051", root_certificates="ca.crt",
+                    certificate_chain="client.crt", private_key="client.key",  # mutual TLS
+                    token=os.environ["APPORTION_TOKEN"])                        # bearer token
     client.register_file("screening.json")            # the CLI's model file format
     answer = client.explain("screening", [3100.0, 0.31, 2.0], target="probability")
     for a in answer.attributions:
@@ -164,18 +167,94 @@ def _background(rows: Iterable[Sequence[float | None]]) -> Any:
     return pb.Matrix(rows=len(rows), cols=cols, values=[v for row in rows for v in row])
 
 
+def _pem(value: bytes | str | pathlib.Path | None, name: str) -> bytes | None:
+    """PEM bytes as given, or read from a path."""
+    if value is None or isinstance(value, bytes):
+        return value
+    try:
+        return pathlib.Path(value).read_bytes()
+    except OSError as error:
+        raise ValueError(f"{name}: cannot read {value}: {error}") from None
+
+
+class _Bearer(grpc.UnaryUnaryClientInterceptor, grpc.UnaryStreamClientInterceptor,
+              grpc.StreamUnaryClientInterceptor, grpc.StreamStreamClientInterceptor):
+    """Adds `authorization: Bearer TOKEN` to every call, on TLS and
+    plaintext channels alike (grpcio's call credentials refuse plaintext)."""
+
+    def __init__(self, token: str):
+        self._header = ("authorization", f"Bearer {token.strip()}")
+
+    def _with_token(self, details: Any) -> Any:
+        metadata = list(details.metadata or []) + [self._header]
+        return details._replace(metadata=metadata) if hasattr(details, "_replace") else _Details(details, metadata)
+
+    def intercept_unary_unary(self, continuation, details, request):
+        return continuation(self._with_token(details), request)
+
+    def intercept_unary_stream(self, continuation, details, request):
+        return continuation(self._with_token(details), request)
+
+    def intercept_stream_unary(self, continuation, details, requests):
+        return continuation(self._with_token(details), requests)
+
+    def intercept_stream_stream(self, continuation, details, requests):
+        return continuation(self._with_token(details), requests)
+
+
+class _Details(grpc.ClientCallDetails):
+    """grpcio's call details with other metadata (its own type is not a
+    named tuple in every version)."""
+
+    def __init__(self, details: Any, metadata: list):
+        self.method = details.method
+        self.timeout = details.timeout
+        self.metadata = metadata
+        self.credentials = details.credentials
+        self.wait_for_ready = getattr(details, "wait_for_ready", None)
+        self.compression = getattr(details, "compression", None)
+
+
 class Client:
-    """One channel to a server; every call takes the client's timeout."""
+    """One channel to a server; every call takes the client's timeout.
+
+    With ``root_certificates`` (the PEM CA certificates the server's
+    certificate must chain to, as bytes or a path) the channel is TLS;
+    ``certificate_chain`` and ``private_key`` add a client certificate for
+    a server that requires one (mutual TLS); ``server_name`` is the name
+    the server's certificate must carry when the address does not say it.
+    ``token`` is sent as ``authorization: Bearer TOKEN`` with every call.
+    """
 
     def __init__(self, address: str = "127.0.0.1:50051", timeout: float = 10.0,
-                 channel: grpc.Channel | None = None):
-        self.channel = channel or grpc.insecure_channel(address)
+                 channel: grpc.Channel | None = None, *,
+                 root_certificates: bytes | str | pathlib.Path | None = None,
+                 certificate_chain: bytes | str | pathlib.Path | None = None,
+                 private_key: bytes | str | pathlib.Path | None = None,
+                 server_name: str | None = None,
+                 token: str | None = None):
+        if (certificate_chain is None) != (private_key is None):
+            raise ValueError("certificate_chain and private_key go together (a certificate and its key)")
+        if certificate_chain is not None and root_certificates is None:
+            raise ValueError("certificate_chain needs root_certificates (the CA that signed the server's certificate)")
+        if channel is None:
+            if root_certificates is None:
+                channel = grpc.insecure_channel(address)
+            else:
+                credentials = grpc.ssl_channel_credentials(
+                    root_certificates=_pem(root_certificates, "root_certificates"),
+                    private_key=_pem(private_key, "private_key"),
+                    certificate_chain=_pem(certificate_chain, "certificate_chain"))
+                options = [("grpc.ssl_target_name_override", server_name)] if server_name else []
+                channel = grpc.secure_channel(address, credentials, options=options)
+        self._plain_channel = channel
+        self.channel = grpc.intercept_channel(channel, _Bearer(token)) if token else channel
         self.timeout = timeout
         self.registry = rpc.RegistryStub(self.channel)
         self.attributions = rpc.AttributionsStub(self.channel)
 
     def close(self) -> None:
-        self.channel.close()
+        self._plain_channel.close()
 
     def __enter__(self) -> "Client":
         return self

@@ -1,7 +1,13 @@
 """The client package against a real server (started by .ci/grpcio-check;
 its address in APPORTION_ADDRESS). Reference values are the linear closed
 form, phi_i = w_i (x_i - mean_bg x_i) ("A unified approach to interpreting
-model predictions", NeurIPS 2017), computed here."""
+model predictions", NeurIPS 2017), computed here.
+
+.ci/grpcio-check runs these tests twice: against a plaintext server, and
+against one with mutual TLS and bearer tokens, whose CA, client certificate
+and key, and token are in APPORTION_TLS_CA, APPORTION_TLS_CERT,
+APPORTION_TLS_KEY and APPORTION_TOKEN; the tests of those options are
+skipped (and say why) in the plaintext run."""
 
 import json
 import math
@@ -17,10 +23,26 @@ WEIGHTS = [0.8, -1.1, 0.5]
 BACKGROUND = [[1.0, 2.0, 0.0], [3.0, 0.0, 4.0], [2.0, 1.0, 2.0]]
 
 
+def secure_options():
+    """The client's TLS and token options from the environment."""
+    options = {}
+    for name, variable in [("root_certificates", "APPORTION_TLS_CA"), ("certificate_chain", "APPORTION_TLS_CERT"),
+                           ("private_key", "APPORTION_TLS_KEY"), ("token", "APPORTION_TOKEN")]:
+        if os.environ.get(variable):
+            options[name] = os.environ[variable]
+    return options
+
+
+needs_tls = pytest.mark.skipif(not os.environ.get("APPORTION_TLS_CA"), reason="plaintext run: no APPORTION_TLS_CA")
+needs_mutual_tls = pytest.mark.skipif(not os.environ.get("APPORTION_TLS_CERT"),
+                                      reason="no client certificate in APPORTION_TLS_CERT")
+needs_token = pytest.mark.skipif(not os.environ.get("APPORTION_TOKEN"), reason="no token in APPORTION_TOKEN")
+
+
 @pytest.fixture(scope="module")
 def client(tmp_path_factory):
     address = os.environ["APPORTION_ADDRESS"]
-    with Client(address) as client:
+    with Client(address, **secure_options()) as client:
         folder = tmp_path_factory.mktemp("model")
         spec = {
             "model_id": "py-package-linear",
@@ -77,3 +99,44 @@ def test_a_bad_row_in_a_batch_names_the_row(client):
         client.explain_rows("py-package-linear", [[1.0, 2.0, 3.0], [1.0, float("nan"), 3.0]])
     assert error.value.row == 1
     assert error.value.code == "INVALID_ARGUMENT"
+
+
+@needs_tls
+def test_a_plaintext_client_is_refused_by_the_tls_server(client):
+    with Client(os.environ["APPORTION_ADDRESS"], timeout=5.0) as plaintext:
+        with pytest.raises(grpc.RpcError) as error:
+            plaintext.models()
+    assert error.value.code() == grpc.StatusCode.UNAVAILABLE
+
+
+@needs_mutual_tls
+def test_mutual_tls_refuses_a_client_without_a_certificate(client):
+    options = secure_options()
+    options.pop("certificate_chain")
+    options.pop("private_key")
+    with Client(os.environ["APPORTION_ADDRESS"], timeout=5.0, **options) as anonymous:
+        with pytest.raises(grpc.RpcError) as error:
+            anonymous.models()
+    assert error.value.code() == grpc.StatusCode.UNAVAILABLE
+
+
+@needs_token
+def test_the_token_is_sent_with_every_call(client):
+    # Without it the server answers UNAUTHENTICATED (gRPC status codes,
+    # grpc.io documentation); with it the same call succeeds.
+    assert client.models()
+    options = secure_options()
+    options.pop("token")
+    with Client(os.environ["APPORTION_ADDRESS"], timeout=5.0, **options) as tokenless:
+        with pytest.raises(grpc.RpcError) as error:
+            tokenless.models()
+    assert error.value.code() == grpc.StatusCode.UNAUTHENTICATED
+    # So do batches (another RPC through the same channel).
+    assert len(client.explain_rows("py-package-linear", [[1.0, 2.0, 3.0]])) == 1
+
+
+def test_half_a_client_identity_is_refused_before_connecting():
+    with pytest.raises(ValueError, match="private_key"):
+        Client("127.0.0.1:1", root_certificates=b"x", certificate_chain=b"y")
+    with pytest.raises(ValueError, match="root_certificates"):
+        Client("127.0.0.1:1", certificate_chain=b"y", private_key=b"z")
