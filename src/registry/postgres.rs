@@ -624,7 +624,7 @@ impl Worker {
     /// longer stored in one step, so the previous state serves until the
     /// new one is ready.
     async fn reread(&mut self) -> Result<Vec<LoadProblem>> {
-        let mut client = self.client("connect to re-read").await?;
+        let client = self.client("connect to re-read").await?;
         let url = self.url.clone();
         let served: BTreeSet<(String, u64)> = {
             let models = self.models.read().unwrap_or_else(PoisonError::into_inner);
@@ -827,21 +827,24 @@ struct Listener {
 impl Listener {
     async fn connect(url: &StoreUrl) -> std::result::Result<Listener, String> {
         let (client, mut connection) = url.connect().await.map_err(|error| describe(&error))?;
-        let listen = client.batch_execute(&format!("LISTEN {CHANGES_CHANNEL}"));
-        tokio::pin!(listen);
-        // The connection must be polled for the LISTEN to be sent and
-        // answered; nothing is notified before it is.
-        loop {
-            tokio::select! {
-                done = &mut listen => {
-                    done.map_err(|error| describe(&error))?;
-                    break;
+        let statement = format!("LISTEN {CHANGES_CHANNEL}");
+        {
+            let listen = client.batch_execute(&statement);
+            tokio::pin!(listen);
+            // The connection must be polled for the LISTEN to be sent and
+            // answered; nothing is notified before it is.
+            loop {
+                tokio::select! {
+                    done = &mut listen => {
+                        done.map_err(|error| describe(&error))?;
+                        break;
+                    }
+                    message = poll_fn(|context| connection.poll_message(context)) => match message {
+                        Some(Ok(_)) => {}
+                        Some(Err(error)) => return Err(describe(&error)),
+                        None => return Err("the connection closed".into()),
+                    },
                 }
-                message = poll_fn(|context| connection.poll_message(context)) => match message {
-                    Some(Ok(_)) => {}
-                    Some(Err(error)) => return Err(describe(&error)),
-                    None => return Err("the connection closed".into()),
-                },
             }
         }
         Ok(Listener {
