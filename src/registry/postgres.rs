@@ -572,7 +572,7 @@ impl Worker {
             let rows = transaction
                 .query(
                     "DELETE FROM apportion_models
-                     WHERE model_id = $1 AND ($2 = 0 OR version = $2)
+                     WHERE model_id = $1 AND ($2::bigint = 0 OR version = $2::bigint)
                      RETURNING version",
                     &[&model_id, &wanted],
                 )
