@@ -274,8 +274,7 @@ pub enum RegistryError {
     /// hosts and database only, never the credentials.
     #[error(
         "registry store {store}: could not {action}: {message}; check that the PostgreSQL server \
-         is running and reachable (registry writes fail until it is; the models already loaded \
-         are still served)"
+         is running and reachable from here"
     )]
     Database {
         store: String,
