@@ -390,8 +390,9 @@ async fn a_replica_that_starts_later_loads_everything_and_migrations_run_once() 
     let served_by_a = listed(&mut registry).await;
 
     let database = schema.client().await;
-    let migrations = || async {
-        database
+    let migrations =
+        || async {
+            database
             .query(
                 "SELECT version, description, applied_at::text FROM apportion_schema_migrations \
                  ORDER BY version",
@@ -402,7 +403,7 @@ async fn a_replica_that_starts_later_loads_everything_and_migrations_run_once() 
             .iter()
             .map(|row| (row.get::<_, i32>(0), row.get::<_, String>(1), row.get::<_, String>(2)))
             .collect::<Vec<_>>()
-    };
+        };
     let before = migrations().await;
     assert_eq!(
         before.iter().map(|row| row.0).collect::<Vec<_>>(),
@@ -507,7 +508,11 @@ async fn an_altered_record_is_reported_and_not_served() {
         .expect("the record has row_cost_ns")
         + key.len();
     assert!(changed[at].is_ascii_digit(), "a digit follows the key");
-    changed[at] = if changed[at] == b'9' { b'1' } else { changed[at] + 1 };
+    changed[at] = if changed[at] == b'9' {
+        b'1'
+    } else {
+        changed[at] + 1
+    };
     let mut truncated = record(2).await;
     truncated.truncate(truncated.len() / 2);
     for (version, bytes) in [(1_i64, changed), (2, truncated)] {
@@ -527,10 +532,19 @@ async fn an_altered_record_is_reported_and_not_served() {
         .collect();
     reasons.sort();
     assert_eq!(reasons.len(), 2, "{reasons:?}");
-    assert!(reasons[0].0.ends_with("/apportion_models/kept/v1"), "{reasons:?}");
+    assert!(
+        reasons[0].0.ends_with("/apportion_models/kept/v1"),
+        "{reasons:?}"
+    );
     assert!(reasons[0].1.contains("digest"), "{reasons:?}");
-    assert!(reasons[1].0.ends_with("/apportion_models/kept/v2"), "{reasons:?}");
-    assert!(reasons[1].1.contains("not a valid model record"), "{reasons:?}");
+    assert!(
+        reasons[1].0.ends_with("/apportion_models/kept/v2"),
+        "{reasons:?}"
+    );
+    assert!(
+        reasons[1].1.contains("not a valid model record"),
+        "{reasons:?}"
+    );
     let mut registry = b.registry_client();
     for version in [1, 2] {
         let refused = registry
@@ -552,7 +566,11 @@ async fn an_altered_record_is_reported_and_not_served() {
         .into_inner();
     assert_eq!(latest.version, 3);
     assert_eq!(
-        listed(&mut registry).await.keys().cloned().collect::<Vec<_>>(),
+        listed(&mut registry)
+            .await
+            .keys()
+            .cloned()
+            .collect::<Vec<_>>(),
         [("kept".to_string(), 3)]
     );
     b.stop().await;

@@ -341,7 +341,8 @@ enum Backend {
         /// Highest version ever assigned per model id, on disk or in memory.
         writer: Mutex<HashMap<String, u64>>,
     },
-    Postgres(postgres::PostgresStore),
+    /// Boxed: the parsed URL makes it several times the directory's size.
+    Postgres(Box<postgres::PostgresStore>),
 }
 
 impl fmt::Debug for Registry {
@@ -438,7 +439,7 @@ impl Registry {
         let models: Models = Arc::default();
         let (store, problems) = postgres::PostgresStore::open(url, reread, models.clone())?;
         let registry = Registry {
-            backend: Backend::Postgres(store),
+            backend: Backend::Postgres(Box::new(store)),
             models,
         };
         Ok((registry, problems))

@@ -34,8 +34,8 @@ use std::time::Duration;
 use serde::{Deserialize, Serialize};
 
 use super::Config;
-use crate::registry::StoreUrl;
 use crate::engine::job::MAX_DRAWS;
+use crate::registry::StoreUrl;
 use crate::telemetry::LogFormat;
 
 /// Largest `max_message_mib`: gRPC frames carry a 32-bit length.
