@@ -150,10 +150,7 @@ fn describe_metrics() {
         STORE_REREADS,
         "full re-reads of the PostgreSQL store, by outcome"
     );
-    metrics::describe_counter!(
-        RECORDS_SKIPPED,
-        "stored records that could not be served"
-    );
+    metrics::describe_counter!(RECORDS_SKIPPED, "stored records that could not be served");
 }
 
 #[cfg(test)]

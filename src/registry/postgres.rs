@@ -46,8 +46,8 @@ use tokio_postgres::config::{Host, SslMode};
 use tokio_postgres::{AsyncMessage, Client, Config, NoTls};
 
 use super::store::{self, Record};
-use crate::telemetry;
 use super::{Entry, FORMAT_VERSION, LoadProblem, ModelInfo, Models, RegistryError, Result};
+use crate::telemetry;
 
 /// The NOTIFY channel every replica LISTENs on; the payload says what
 /// changed (`register MODEL_ID VERSION` or `delete MODEL_ID VERSION,…`), for
