@@ -319,6 +319,38 @@ async fn a_change_on_one_replica_is_learned_by_the_other() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_periodic_reread_catches_a_change_that_sent_no_notification() {
+    let Some(schema) = TestSchema::create("reread").await else {
+        return;
+    };
+    let a = support::start_with(replica(schema.store(), Duration::from_secs(1))).await;
+    let mut registry = a.registry_client();
+    registry
+        .register_model(linear_registration("quiet", "stored", 1).0)
+        .await
+        .expect("A registers");
+    // Removed behind every replica's back: no NOTIFY, only the re-read
+    // (every second here) can find out.
+    let removed = schema
+        .client()
+        .await
+        .execute("DELETE FROM apportion_models WHERE model_id = 'quiet'", &[])
+        .await
+        .expect("the row is deleted");
+    assert_eq!(removed, 1);
+    let ((), took) = poll_until("A drops the row deleted without notification", || {
+        let mut client = registry.clone();
+        async move { listed(&mut client).await.is_empty().then_some(()) }
+    })
+    .await;
+    eprintln!(
+        "replica A dropped a version deleted without NOTIFY after {:.1} ms (re-read every 1 s)",
+        milliseconds(took)
+    );
+    a.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn concurrent_registrations_across_replicas_get_consecutive_versions() {
     let Some(schema) = TestSchema::create("race").await else {
         return;

@@ -28,8 +28,8 @@
 //! together apply each exactly once. NOTIFY is sent inside the writing
 //! transaction, and PostgreSQL delivers it only on commit (PostgreSQL
 //! documentation, "NOTIFY"), so a replica never hears of a change it cannot
-//! yet read. The channel is database-wide: replicas using different schemas
-//! of one database hear each other's changes, which only costs a re-read.
+//! yet read. The channel is database-wide, so each payload names the schema
+//! of the tables it changed and replicas ignore other schemas' changes.
 //!
 //! The connection is not encrypted by apportion (no TLS): keep the database
 //! on a trusted network or reach it through a local TLS proxy.
@@ -49,9 +49,11 @@ use super::store::{self, Record};
 use super::{Entry, FORMAT_VERSION, LoadProblem, ModelInfo, Models, RegistryError, Result};
 use crate::telemetry;
 
-/// The NOTIFY channel every replica LISTENs on; the payload says what
-/// changed (`register MODEL_ID VERSION` or `delete MODEL_ID VERSION,…`), for
-/// anyone watching with `psql`: replicas re-read the table whatever it says.
+/// The NOTIFY channel every replica LISTENs on. The payload says what
+/// changed and in which schema (`register MODEL_ID VERSION in SCHEMA`,
+/// `delete MODEL_ID VERSION,… in SCHEMA`): a replica ignores other schemas'
+/// changes and otherwise re-reads the table, whatever the rest says (it is
+/// there for anyone watching with `psql`).
 pub const CHANGES_CHANNEL: &str = "apportion_registry_changes";
 
 /// The key of the advisory lock held while migrating ("apportion" in
@@ -75,6 +77,17 @@ const MIGRATIONS: &[(i32, &str, &str)] = &[(
          PRIMARY KEY (model_id, version)
      );",
 )];
+
+/// Sends a change's notification, naming the schema the tables are in.
+const NOTIFY: &str = "SELECT pg_notify($1, $2 || ' in ' || current_schema())";
+
+/// Whether a notification's payload may concern the tables of `schema`:
+/// yes unless it names another schema.
+fn concerns(payload: &str, schema: &str) -> bool {
+    payload
+        .rsplit_once(" in ")
+        .is_none_or(|(_, named)| named == schema)
+}
 
 /// How long a connection attempt may take (common practice, no source).
 const CONNECT_TIMEOUT: Duration = Duration::from_secs(5);
@@ -569,7 +582,7 @@ impl Worker {
                 .await?;
             let payload = format!("register {model_id} {version}");
             transaction
-                .execute("SELECT pg_notify($1, $2)", &[&CHANGES_CHANNEL, &payload])
+                .execute(NOTIFY, &[&CHANGES_CHANNEL, &payload])
                 .await?;
             transaction.commit().await?;
             Ok(entry)
@@ -612,7 +625,7 @@ impl Worker {
             let listed: Vec<String> = removed.iter().map(u64::to_string).collect();
             let payload = format!("delete {model_id} {}", listed.join(","));
             transaction
-                .execute("SELECT pg_notify($1, $2)", &[&CHANGES_CHANNEL, &payload])
+                .execute(NOTIFY, &[&CHANGES_CHANNEL, &payload])
                 .await?;
             transaction.commit().await?;
             Ok(removed)
@@ -849,54 +862,71 @@ async fn migrate(client: &mut Client) -> std::result::Result<(), Failure> {
     Ok(())
 }
 
+/// Awaits `work` on a connection that this task polls itself (as the
+/// listening connection is): the connection must be polled for the
+/// statement to be sent and answered.
+async fn while_polling<T>(
+    connection: &mut ListeningConnection,
+    work: impl Future<Output = std::result::Result<T, tokio_postgres::Error>>,
+) -> std::result::Result<T, String> {
+    tokio::pin!(work);
+    loop {
+        tokio::select! {
+            done = &mut work => return done.map_err(|error| describe(&error)),
+            message = poll_fn(|context| connection.poll_message(context)) => match message {
+                Some(Ok(_)) => {}
+                Some(Err(error)) => return Err(describe(&error)),
+                None => return Err("the connection closed".into()),
+            },
+        }
+    }
+}
+
+type ListeningConnection =
+    tokio_postgres::Connection<tokio_postgres::Socket, tokio_postgres::tls::NoTlsStream>;
+
 /// The connection that LISTENs, polled by its own task: tokio-postgres
 /// hands notifications to whoever polls the connection.
 struct Listener {
     /// Kept alive: dropping the client closes the connection.
     _client: Client,
-    connection:
-        tokio_postgres::Connection<tokio_postgres::Socket, tokio_postgres::tls::NoTlsStream>,
+    /// The schema this connection's search path resolves to, where the
+    /// tables are: notifications about other schemas are not ours.
+    schema: String,
+    connection: ListeningConnection,
 }
 
 impl Listener {
     async fn connect(url: &StoreUrl) -> std::result::Result<Listener, String> {
         let (client, mut connection) = url.connect().await.map_err(|error| describe(&error))?;
+        let schema: Option<String> = while_polling(&mut connection, async {
+            let row = client.query_one("SELECT current_schema()", &[]).await?;
+            Ok(row.get(0))
+        })
+        .await?;
         let statement = format!("LISTEN {CHANGES_CHANNEL}");
-        {
-            let listen = client.batch_execute(&statement);
-            tokio::pin!(listen);
-            // The connection must be polled for the LISTEN to be sent and
-            // answered; nothing is notified before it is.
-            loop {
-                tokio::select! {
-                    done = &mut listen => {
-                        done.map_err(|error| describe(&error))?;
-                        break;
-                    }
-                    message = poll_fn(|context| connection.poll_message(context)) => match message {
-                        Some(Ok(_)) => {}
-                        Some(Err(error)) => return Err(describe(&error)),
-                        None => return Err("the connection closed".into()),
-                    },
-                }
-            }
-        }
+        while_polling(&mut connection, client.batch_execute(&statement)).await?;
         Ok(Listener {
             _client: client,
+            schema: schema.unwrap_or_default(),
             connection,
         })
     }
 
-    /// Wakes the re-reader on every notification; when the connection is
-    /// lost, reconnects (every [`RECONNECT_DELAY`]) and wakes it again,
-    /// since changes made meanwhile were not heard.
+    /// Wakes the re-reader on every notification about its schema; when
+    /// the connection is lost, reconnects (every [`RECONNECT_DELAY`]) and
+    /// wakes it again, since changes made meanwhile were not heard.
     async fn run(self, url: StoreUrl, changed: Arc<Notify>) {
         metrics::gauge!(telemetry::STORE_LISTENING).set(1.0);
         let mut listener = self;
         loop {
             let lost = loop {
                 match poll_fn(|context| listener.connection.poll_message(context)).await {
-                    Some(Ok(AsyncMessage::Notification(_))) => changed.notify_one(),
+                    Some(Ok(AsyncMessage::Notification(note))) => {
+                        if concerns(note.payload(), &listener.schema) {
+                            changed.notify_one();
+                        }
+                    }
                     Some(Ok(_)) => {}
                     Some(Err(error)) => break describe(&error),
                     None => break "the connection closed".to_string(),
@@ -950,6 +980,15 @@ mod tests {
                 .redacted(),
             "postgres://postgres@127.0.0.1/test"
         );
+    }
+
+    #[test]
+    fn notifications_about_other_schemas_are_ignored() {
+        assert!(concerns("register m 3 in registry", "registry"));
+        assert!(!concerns("register m 3 in other", "registry"));
+        // A payload in another form wakes the re-read: it costs a re-read,
+        // where ignoring it could miss a change.
+        assert!(concerns("something else", "registry"));
     }
 
     #[test]
