@@ -965,3 +965,117 @@ fn acknowledged_registrations_survive_sigkill_of_a_replica() {
     runtime.block_on(survivor.stop());
     drop(schema);
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_binary_never_shows_the_store_password() {
+    let Some(schema) = TestSchema::create("secret").await else {
+        return;
+    };
+    let parsed: tokio_postgres::Config = schema.url().parse().expect("the test URL parses");
+    let Some(tokio_postgres::config::Host::Tcp(host)) = parsed.get_hosts().first() else {
+        eprintln!(
+            "skipped: {URL_VARIABLE} does not name a TCP host, so the password check was not run"
+        );
+        return;
+    };
+    let port = parsed.get_ports().first().copied().unwrap_or(5432);
+    let user = parsed.get_user().unwrap_or("postgres");
+    let database = parsed.get_dbname().unwrap_or(user);
+    // The real password if the URL has one; else one that a server with
+    // trust authentication never asks for.
+    let secret = parsed.get_password().map_or_else(
+        || "unasked-under-trust-7f3a".to_string(),
+        |password| String::from_utf8_lossy(password).into_owned(),
+    );
+    let url = with_search_path(
+        &format!("postgres://{user}:{secret}@{host}:{port}/{database}"),
+        &schema.name,
+    );
+    let logs = tempfile::tempdir().unwrap();
+    let log_path = logs.path().join("serve.log");
+    let address = free_address();
+    let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
+    for (variable, _) in std::env::vars_os() {
+        if variable.to_string_lossy().starts_with("APPORTION_") {
+            command.env_remove(variable);
+        }
+    }
+    let log_file = std::fs::File::create(&log_path).unwrap();
+    // Debug logs from every crate (the database client's included): the
+    // most a log could give away.
+    let mut child = command
+        .args(["serve", "--address", &address.to_string()])
+        .args(["--store", &url])
+        .args(["--metrics-address", &free_address().to_string()])
+        .args(["--log-filter", "debug", "--log-format", "json"])
+        .env_remove("RUST_LOG")
+        .stdout(log_file.try_clone().unwrap())
+        .stderr(log_file)
+        .spawn()
+        .unwrap();
+    let started = Instant::now();
+    while StdTcpStream::connect(address).is_err() {
+        if let Some(status) = child.try_wait().unwrap() {
+            panic!(
+                "the server exited ({status}) before listening: {}",
+                std::fs::read_to_string(&log_path)
+                    .unwrap()
+                    .replace(&secret, "<the password>")
+            );
+        }
+        assert!(
+            started.elapsed() < Duration::from_secs(60),
+            "the server never listened"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let mut client = client_of(address).await;
+    client
+        .register_model(linear_registration("hidden", "stored", 1).0)
+        .await
+        .expect("the binary registers");
+    child.kill().unwrap();
+    child.wait().unwrap();
+    let logged = std::fs::read_to_string(&log_path).unwrap();
+    assert!(
+        logged.contains(&format!("postgres://{host}:{port}/{database}")),
+        "the store is named in the logs by host and database"
+    );
+    // Common practice, no source: credentials never reach logs or output.
+    assert!(!logged.contains(&secret), "the password was logged");
+
+    let printed = Command::new(env!("CARGO_BIN_EXE_apportion"))
+        .args(["serve", "--print-config", "--store", &url])
+        .output()
+        .unwrap();
+    let printed = String::from_utf8_lossy(&printed.stdout);
+    assert!(printed.contains("REDACTED"), "{printed}");
+    assert!(
+        !printed.contains(&secret),
+        "--print-config showed the password"
+    );
+
+    let unreachable = free_address();
+    let failed = Command::new(env!("CARGO_BIN_EXE_apportion"))
+        .args(["serve", "--address", &free_address().to_string()])
+        .args(["--metrics-address", &free_address().to_string()])
+        .arg("--store")
+        .arg(format!(
+            "postgres://{user}:{secret}@{unreachable}/{database}"
+        ))
+        .output()
+        .unwrap();
+    assert!(!failed.status.success());
+    let said = String::from_utf8_lossy(&failed.stderr);
+    assert!(
+        said.contains(&format!(
+            "registry store postgres://{unreachable}/{database}"
+        )),
+        "{}",
+        said.replace(&secret, "<the password>")
+    );
+    assert!(
+        !said.contains(&secret),
+        "a failed start showed the password"
+    );
+}
