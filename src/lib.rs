@@ -13,7 +13,8 @@
 //!   not part of the library proper.
 //! - [`client`]: the thin gRPC client behind `apportion models` and `explain`.
 //! - [`reasons`]: attributions → principal reason statements.
-//! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
+//! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely
+//!   in a directory, or shared by several replicas in PostgreSQL.
 //! - [`service`]: the gRPC API: conversions, error → status, handlers, `run`.
 //! - [`telemetry`]: log subscriber and Prometheus metrics.
 #![deny(unsafe_code)]
