@@ -91,9 +91,9 @@ fn concerns(payload: &str, schema: &str) -> bool {
 
 /// How long a connection attempt may take (common practice, no source).
 const CONNECT_TIMEOUT: Duration = Duration::from_secs(5);
-/// How long one registration, deletion or re-read may wait on the
-/// database before the connection is given up as lost: long enough for a
-/// record of hundreds of MiB on a slow link.
+/// How long one registration or deletion, or one statement of a re-read,
+/// may wait on the database before the connection is given up as lost:
+/// long enough for a record of hundreds of MiB on a slow link.
 const COMMAND_TIMEOUT: Duration = Duration::from_secs(60);
 /// Pause between attempts to reconnect the listening connection.
 const RECONNECT_DELAY: Duration = Duration::from_secs(1);
@@ -670,10 +670,15 @@ impl Worker {
                 .collect()
         };
         let refused = self.refused.clone();
-        let result = timed(&self.url, "re-read the registry", async {
-            let rows = client
-                .query("SELECT model_id, version FROM apportion_models", &[])
-                .await?;
+        // Each statement has its own time limit; preparing a model does
+        // not count against it (a start may prepare many).
+        let result = async {
+            let rows = timed(&url, "list the registry", async {
+                Ok(client
+                    .query("SELECT model_id, version FROM apportion_models", &[])
+                    .await?)
+            })
+            .await?;
             let stored: BTreeSet<(String, u64)> = rows
                 .iter()
                 .map(|row| {
@@ -687,13 +692,17 @@ impl Worker {
                 if refused.contains(&(model_id.clone(), *version)) {
                     continue;
                 }
-                let Some(row) = client
-                    .query_opt(
-                        "SELECT record FROM apportion_models WHERE model_id = $1 AND version = $2",
-                        &[model_id, &i64::try_from(*version).unwrap_or(0)],
-                    )
-                    .await?
-                else {
+                let row = timed(&url, "read a record", async {
+                    Ok(client
+                        .query_opt(
+                            "SELECT record FROM apportion_models \
+                             WHERE model_id = $1 AND version = $2",
+                            &[model_id, &i64::try_from(*version).unwrap_or(0)],
+                        )
+                        .await?)
+                })
+                .await?;
+                let Some(row) = row else {
                     // Deleted since the list was read.
                     continue;
                 };
@@ -708,7 +717,7 @@ impl Worker {
                 }
             }
             Ok((stored, fresh, problems))
-        })
+        }
         .await;
         let (stored, fresh, problems) = self.settle(client, result)?;
         {
