@@ -319,6 +319,90 @@ async fn a_change_on_one_replica_is_learned_by_the_other() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_previous_version_serves_until_the_new_one_is_ready() {
+    let Some(schema) = TestSchema::create("swap").await else {
+        return;
+    };
+    let a = support::start_with(replica(schema.store(), NO_TIMER)).await;
+    let b = support::start_with(replica(schema.store(), NO_TIMER)).await;
+    a.registry_client()
+        .register_model(linear_registration("grown", "small", 1).0)
+        .await
+        .expect("A registers the first version");
+    let explainer = b.attributions_client();
+    let explain = || {
+        let mut client = explainer.clone();
+        async move {
+            client
+                .explain(proto::ExplainRequest {
+                    model_id: "grown".into(),
+                    instance: vec![0.0; FEATURES],
+                    budget_ms: 10_000,
+                    ..Default::default()
+                })
+                .await
+                .map(|answer| answer.into_inner().version)
+        }
+    };
+    poll_until("B serves the first version", || async {
+        explain().await.ok()
+    })
+    .await;
+    // The second version has the largest background the registry takes,
+    // so B spends a while reading, verifying and preparing it.
+    let (mut large, _, _) = linear_registration("grown", "large", 2);
+    let rows = apportion::registry::MAX_BACKGROUND_ROWS;
+    let mut rng = ChaCha8Rng::seed_from_u64(3);
+    large.background = Some(proto::Matrix {
+        rows: rows as u32,
+        cols: FEATURES as u32,
+        values: (0..rows * FEATURES)
+            .map(|_| rng.random_range(-2.0..2.0))
+            .collect(),
+    });
+    let registering = tokio::spawn({
+        let mut client = a.registry_client();
+        async move { client.register_model(large).await }
+    });
+    // Until B has the new version ready, every call it answers is
+    // answered from the old one: no gap, no error.
+    let started = Instant::now();
+    let answered_by_first = Arc::new(AtomicU64::new(0));
+    let ((), took) = poll_until("B serves the large second version", || {
+        let explained = explain();
+        let answered = answered_by_first.clone();
+        async move {
+            match explained.await {
+                Ok(1) => {
+                    answered.fetch_add(1, Ordering::SeqCst);
+                    None
+                }
+                Ok(2) => Some(()),
+                Ok(other) => panic!("B answered with version {other}"),
+                Err(status) => panic!("B failed while the new version was prepared: {status}"),
+            }
+        }
+    })
+    .await;
+    let info = registering
+        .await
+        .expect("the task ends")
+        .expect("A registers the large version")
+        .into_inner();
+    assert_eq!(info.version, 2);
+    let answered_by_first = answered_by_first.load(Ordering::SeqCst);
+    assert!(answered_by_first > 0, "B was never asked while it prepared");
+    eprintln!(
+        "B answered {answered_by_first} calls from version 1 and then version 2 ({rows} \
+         background rows, prepared on A in {:.0} ms) {:.0} ms after its registration was sent",
+        info.preparation_ms,
+        milliseconds(took.max(started.elapsed()))
+    );
+    a.stop().await;
+    b.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_periodic_reread_catches_a_change_that_sent_no_notification() {
     let Some(schema) = TestSchema::create("reread").await else {
         return;
