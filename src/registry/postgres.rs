@@ -20,7 +20,7 @@
 //! ```text
 //! apportion_schema_migrations (version, description, applied_at)  one row per migration applied
 //! apportion_model_versions    (model_id, last_version)             highest version ever assigned
-//! apportion_models            (model_id, version, record, stored_at)  one row per served version;
+//! apportion_models            (model_id, version, record, stored_at)  one row per stored version;
 //!                                                                  record: the record file's bytes
 //! ```
 //! Migrations run at start in one transaction under `pg_advisory_xact_lock`
