@@ -14,7 +14,8 @@
 //! - [`client`]: the thin gRPC client behind `apportion models` and `explain`.
 //! - [`drift`]: attribution summaries over time windows and their drift.
 //! - [`reasons`]: attributions → principal reason statements.
-//! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely.
+//! - [`registry`]: registered models, versions and backgrounds, persisted crash-safely
+//!   in a directory, or shared by several replicas in PostgreSQL.
 //! - [`service`]: the gRPC API: conversions, error → status, handlers, `run`.
 //! - [`telemetry`]: log subscriber and Prometheus metrics.
 #![deny(unsafe_code)]

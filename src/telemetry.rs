@@ -53,6 +53,15 @@ pub const ATTRIBUTION_STABILITY: &str = "apportion_attribution_stability_index";
 pub const ATTRIBUTION_LOG_DROPPED: &str = "apportion_attribution_log_dropped_total";
 /// Attribution-log lines that could not be written, by step.
 pub const ATTRIBUTION_LOG_ERRORS: &str = "apportion_attribution_log_errors_total";
+/// With the PostgreSQL store: 1 while the connection that LISTENs for other
+/// replicas' changes is up, 0 while it is being re-made (gauge).
+pub const STORE_LISTENING: &str = "apportion_registry_store_listening";
+/// With the PostgreSQL store: full re-reads of the registry, by `outcome`
+/// (`ok`, `failed`) (counter).
+pub const STORE_REREADS: &str = "apportion_registry_store_rereads_total";
+/// Stored records that could not be served (damaged, altered or invalid),
+/// found on load or re-read; each is also logged (counter).
+pub const RECORDS_SKIPPED: &str = "apportion_registry_records_skipped_total";
 
 /// Bucket bounds of the latency histogram, in seconds: from well under a
 /// millisecond to the longest sensible budget.
@@ -177,6 +186,15 @@ fn describe_metrics() {
         ITEMS,
         "ExplainBatch instances and ExplainStream requests answered, by rpc and code"
     );
+    metrics::describe_gauge!(
+        STORE_LISTENING,
+        "1 while the PostgreSQL store's listening connection is up"
+    );
+    metrics::describe_counter!(
+        STORE_REREADS,
+        "full re-reads of the PostgreSQL store, by outcome"
+    );
+    metrics::describe_counter!(RECORDS_SKIPPED, "stored records that could not be served");
 }
 
 #[cfg(test)]

@@ -37,16 +37,25 @@
 //! validation, or a leftover temporary file, is reported as a
 //! [`LoadProblem`] and skipped; it is never served and never fatal.
 //!
+//! # The PostgreSQL store
+//! With a `postgres://` URL ([`Registry::open_postgres`]) the same records
+//! are kept as rows of a table instead, for several replicas sharing one
+//! registry; see the `postgres` module. The directory is the default.
+//!
 //! # Layout
 //! - `spec`: the registration as submitted and stored (serde types).
 //! - `validate`: limits, checks, building the model, measuring its row cost
 //!   and deriving the [`PreparedModel`] (at registration and on every load).
-//! - `store`: the crash-safe files.
+//! - `store`: the crash-safe files, and the record encoding both stores use.
+//! - `postgres`: the PostgreSQL store and the thread that talks to it.
 //! - here: [`Registry`], its entries and errors.
 
+mod postgres;
 mod spec;
 mod store;
 mod validate;
+
+pub use postgres::{CHANGES_CHANNEL, StoreUrl};
 
 pub use spec::{
     Background, Decision, FeatureSpec, ImportFormat, ImportSpec, LinkSpec, ModelBody, ModelSpec,
@@ -64,7 +73,7 @@ use std::collections::{BTreeMap, HashMap};
 use std::fmt;
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex, PoisonError, RwLock};
-use std::time::{SystemTime, UNIX_EPOCH};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use ndarray::ArrayView2;
 
@@ -210,10 +219,12 @@ impl Registry {
     }
 }
 
-/// A file skipped on open, and why; or a format-1 record that was served
+/// A record skipped on load, and why; or a format-1 record that was served
 /// but could not be rewritten with a record digest (the reason says so).
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct LoadProblem {
+    /// The file, or for the PostgreSQL store the row written like a path
+    /// (`postgres://HOST:PORT/DATABASE/apportion_models/MODEL_ID/vVERSION`).
     pub path: PathBuf,
     pub reason: String,
 }
@@ -259,6 +270,17 @@ pub enum RegistryError {
         action: &'static str,
         source: std::io::Error,
     },
+    /// The PostgreSQL store did not answer or refused; `store` shows the
+    /// hosts and database only, never the credentials.
+    #[error(
+        "registry store {store}: could not {action}: {message}; check that the PostgreSQL server \
+         is running and reachable from here"
+    )]
+    Database {
+        store: String,
+        action: &'static str,
+        message: String,
+    },
 }
 
 impl RegistryError {
@@ -269,7 +291,9 @@ impl RegistryError {
             RegistryError::TooLarge { .. } => ErrorKind::InvalidArgument,
             RegistryError::NotFound { .. } => ErrorKind::NotFound,
             // Storage trouble is the operator's to fix and may pass.
-            RegistryError::InUse { .. } | RegistryError::Io { .. } => ErrorKind::Unavailable,
+            RegistryError::InUse { .. }
+            | RegistryError::Io { .. }
+            | RegistryError::Database { .. } => ErrorKind::Unavailable,
         }
     }
 
@@ -280,7 +304,9 @@ impl RegistryError {
             RegistryError::TooLarge { field, .. } => Some(field),
             RegistryError::NotFound { version: 0, .. } => Some("model_id"),
             RegistryError::NotFound { .. } => Some("version"),
-            RegistryError::InUse { .. } | RegistryError::Io { .. } => None,
+            RegistryError::InUse { .. }
+            | RegistryError::Io { .. }
+            | RegistryError::Database { .. } => None,
         }
     }
 }
@@ -296,23 +322,48 @@ fn unix_ms_now() -> u64 {
 
 type Versions = BTreeMap<u64, Arc<Entry>>;
 
+/// The served models; shared with the PostgreSQL store's thread, which
+/// applies the changes other replicas make.
+type Models = Arc<RwLock<BTreeMap<String, Versions>>>;
+
 /// The registered models. Reads take a shared lock for a map lookup only;
-/// writes are serialised by a separate mutex and do their file I/O without
-/// holding the map lock.
+/// writes are serialised (by a mutex for the directory, by the database
+/// thread for PostgreSQL) and do their I/O without holding the map lock.
 pub struct Registry {
-    store: Store,
-    models: RwLock<BTreeMap<String, Versions>>,
-    /// Highest version ever assigned per model id, on disk or in memory.
-    writer: Mutex<HashMap<String, u64>>,
+    backend: Backend,
+    models: Models,
+}
+
+/// Where the records are kept.
+enum Backend {
+    Directory {
+        store: Store,
+        /// Highest version ever assigned per model id, on disk or in memory.
+        writer: Mutex<HashMap<String, u64>>,
+    },
+    /// Boxed: the parsed URL makes it several times the directory's size.
+    Postgres(Box<postgres::PostgresStore>),
 }
 
 impl fmt::Debug for Registry {
     fn fmt(&self, formatter: &mut fmt::Formatter<'_>) -> fmt::Result {
-        formatter
-            .debug_struct("Registry")
-            .field("dir", &self.store.root())
-            .finish_non_exhaustive()
+        let mut debug = formatter.debug_struct("Registry");
+        match &self.backend {
+            Backend::Directory { store, .. } => debug.field("dir", &store.root()),
+            Backend::Postgres(store) => debug.field("store", store.url()),
+        };
+        debug.finish_non_exhaustive()
     }
+}
+
+/// A verified record as a served entry: its spec validated against its
+/// checksum and prepared, its version and registration time restored.
+fn entry_from_record(record: Record<ModelSpec>) -> Result<Entry> {
+    let mut entry = validate::validate(record.spec, Some(record.checksum))
+        .and_then(|validated| validated.into_entry(record.row_cost_ns))?;
+    entry.info.version = record.version;
+    entry.info.registered_unix_ms = record.registered_unix_ms;
+    Ok(entry)
 }
 
 impl Registry {
@@ -324,13 +375,15 @@ impl Registry {
         let mut models: BTreeMap<String, Versions> = BTreeMap::new();
         for loaded in std::mem::take(&mut scan.records) {
             let record = loaded.record;
-            let entry = validate::validate(record.spec, Some(record.checksum))
-                .and_then(|validated| validated.into_entry(record.row_cost_ns));
-            match entry {
-                Ok(mut entry) => {
-                    entry.info.version = record.version;
-                    entry.info.registered_unix_ms = record.registered_unix_ms;
-                    if record.format_version == store::LEGACY_FORMAT_VERSION {
+            let (model_id, version) = (record.model_id.clone(), record.version);
+            let (format_version, registered_unix_ms, row_cost_ns) = (
+                record.format_version,
+                record.registered_unix_ms,
+                record.row_cost_ns,
+            );
+            match entry_from_record(record) {
+                Ok(entry) => {
+                    if format_version == store::LEGACY_FORMAT_VERSION {
                         // A format-1 record's header is trusted this once
                         // (its spec passed its checksum) and sealed with a
                         // whole-record digest, so a later change is caught.
@@ -338,11 +391,11 @@ impl Registry {
                         let upgraded = Record {
                             format: String::new(),
                             format_version: FORMAT_VERSION,
-                            model_id: record.model_id.clone(),
-                            version: record.version,
+                            model_id: model_id.clone(),
+                            version,
                             checksum: entry.info.checksum.clone(),
-                            registered_unix_ms: record.registered_unix_ms,
-                            row_cost_ns: record.row_cost_ns,
+                            registered_unix_ms,
+                            row_cost_ns,
                             spec: &spec,
                             record_digest: String::new(),
                         };
@@ -358,9 +411,9 @@ impl Registry {
                         }
                     }
                     models
-                        .entry(record.model_id)
+                        .entry(model_id)
                         .or_default()
-                        .insert(record.version, Arc::new(entry));
+                        .insert(version, Arc::new(entry));
                 }
                 Err(error) => scan.problem(
                     &loaded.path,
@@ -369,11 +422,27 @@ impl Registry {
             }
         }
         let registry = Registry {
-            store,
-            models: RwLock::new(models),
-            writer: Mutex::new(scan.last_versions.into_iter().collect()),
+            backend: Backend::Directory {
+                store,
+                writer: Mutex::new(scan.last_versions.into_iter().collect()),
+            },
+            models: Arc::new(RwLock::new(models)),
         };
         Ok((registry, scan.problems))
+    }
+
+    /// Opens the registry kept in the PostgreSQL database at `url`: migrates
+    /// its schema, loads every record, and from then on follows the changes
+    /// other replicas make (on NOTIFY, and by a full re-read every
+    /// `reread`). Records that cannot be served are returned as problems.
+    pub fn open_postgres(url: &StoreUrl, reread: Duration) -> Result<(Registry, Vec<LoadProblem>)> {
+        let models: Models = Arc::default();
+        let (store, problems) = postgres::PostgresStore::open(url, reread, models.clone())?;
+        let registry = Registry {
+            backend: Backend::Postgres(Box::new(store)),
+            models,
+        };
+        Ok((registry, problems))
     }
 
     /// Opens the registry in [`default_data_dir`].
@@ -389,8 +458,12 @@ impl Registry {
         Registry::open(dir)
     }
 
-    pub fn dir(&self) -> &Path {
-        self.store.root()
+    /// The data directory; `None` for the PostgreSQL store.
+    pub fn dir(&self) -> Option<&Path> {
+        match &self.backend {
+            Backend::Directory { store, .. } => Some(store.root()),
+            Backend::Postgres(_) => None,
+        }
     }
 
     /// Validates `spec`, measures its row cost, assigns the next version and
@@ -402,9 +475,13 @@ impl Registry {
             validate::measure_row_cost(validated.model.as_ref(), validated.background.view());
         let mut entry = validated.into_entry(row_cost_ns)?;
         entry.info.registered_unix_ms = unix_ms_now();
+        let (store, writer) = match &self.backend {
+            Backend::Directory { store, writer } => (store, writer),
+            Backend::Postgres(store) => return store.register(entry),
+        };
         let model_id = entry.info.model_id.clone();
 
-        let mut last_versions = self.writer.lock().unwrap_or_else(PoisonError::into_inner);
+        let mut last_versions = writer.lock().unwrap_or_else(PoisonError::into_inner);
         // On a case-insensitive file system these would share a directory.
         if let Some(other) = last_versions
             .keys()
@@ -440,8 +517,8 @@ impl Registry {
             spec: &spec,
             record_digest: String::new(),
         };
-        if let Err(error) = self.store.write_record(record) {
-            self.store.discard_record(&model_id, version);
+        if let Err(error) = store.write_record(record) {
+            store.discard_record(&model_id, version);
             return Err(error);
         }
         drop(spec);
@@ -479,9 +556,14 @@ impl Registry {
     }
 
     /// Deletes one version, or all of them when `version` is 0, from disk
-    /// (durably) and then from memory. Returns how many were deleted.
+    /// (durably) or the database (in one transaction), and then from
+    /// memory. Returns how many were deleted.
     pub fn delete(&self, model_id: &str, version: u64) -> Result<usize> {
-        let last_versions = self.writer.lock().unwrap_or_else(PoisonError::into_inner);
+        let (store, writer) = match &self.backend {
+            Backend::Directory { store, writer } => (store, writer),
+            Backend::Postgres(store) => return store.delete(model_id, version),
+        };
+        let last_versions = writer.lock().unwrap_or_else(PoisonError::into_inner);
         let doomed: Vec<u64> = {
             let models = self.models.read().unwrap_or_else(PoisonError::into_inner);
             match models.get(model_id) {
@@ -499,8 +581,8 @@ impl Registry {
         // Record the highest version first, so it outlives the files that
         // carried it.
         let last = last_versions.get(model_id).copied().unwrap_or(0);
-        self.store.write_counter(model_id, last)?;
-        let (removed, failure) = self.store.remove_records(model_id, &doomed);
+        store.write_counter(model_id, last)?;
+        let (removed, failure) = store.remove_records(model_id, &doomed);
         {
             let mut models = self.models.write().unwrap_or_else(PoisonError::into_inner);
             if let Some(versions) = models.get_mut(model_id) {

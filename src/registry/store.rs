@@ -121,6 +121,26 @@ pub(crate) fn record_digest<S: Serialize>(record: &Record<S>) -> serde_json::Res
     json_sha256(&unsealed)
 }
 
+/// `record` as [`FORMAT_VERSION`] with its whole-record digest, whatever
+/// `format`, `format_version` and `record_digest` the caller set.
+fn seal<S: Serialize>(record: Record<S>) -> serde_json::Result<Record<S>> {
+    let mut record = Record {
+        format: RECORD_FORMAT.to_string(),
+        format_version: FORMAT_VERSION,
+        record_digest: String::new(),
+        ..record
+    };
+    record.record_digest = record_digest(&record)?;
+    Ok(record)
+}
+
+/// The bytes of `record` as a record file holds them: sealed as
+/// [`FORMAT_VERSION`] with its digest. Other stores keep records in this
+/// same form, so [`decode_record`] verifies them the same way.
+pub(crate) fn encode_record(record: Record<&ModelSpec>) -> serde_json::Result<Vec<u8>> {
+    serde_json::to_vec(&seal(record)?)
+}
+
 /// The highest version ever assigned to a model, kept so deleted versions
 /// are never reused.
 #[derive(Debug, Serialize, Deserialize)]
@@ -268,13 +288,7 @@ impl Store {
         let dir = self.model_dir(&record.model_id);
         ensure_dir(&dir)?;
         let path = dir.join(version_file_name(record.version));
-        let mut record = Record {
-            format: RECORD_FORMAT.to_string(),
-            format_version: FORMAT_VERSION,
-            record_digest: String::new(),
-            ..record
-        };
-        record.record_digest = record_digest(&record).map_err(|error| {
+        let record = seal(record).map_err(|error| {
             io_error(&path, "serialise the record for its digest")(error.into())
         })?;
         write_durably(&dir, &version_file_name(record.version), |writer| {
@@ -478,7 +492,20 @@ fn read_counter(path: &Path, model_id: &str) -> Result<u64, String> {
 
 fn read_record(path: &Path, model_id: &str, version: u64) -> Result<Record<ModelSpec>, String> {
     let bytes = read_limited(path)?;
-    let mut record: Record<ModelSpec> = serde_json::from_slice(&bytes).map_err(|error| {
+    decode_record(&bytes, model_id, version, true)
+}
+
+/// Parses and verifies a record's bytes: its format, its whole-record
+/// digest (for a format-1 record, allowed only where `legacy` says so, its
+/// content checksum alone), and that it holds `model_id` version `version`.
+/// The error says what is wrong, for a [`LoadProblem`].
+pub(crate) fn decode_record(
+    bytes: &[u8],
+    model_id: &str,
+    version: u64,
+    legacy: bool,
+) -> Result<Record<ModelSpec>, String> {
+    let mut record: Record<ModelSpec> = serde_json::from_slice(bytes).map_err(|error| {
         format!("not a valid model record (truncated or overwritten?): {error}")
     })?;
     match record.format_version {
@@ -496,24 +523,24 @@ fn read_record(path: &Path, model_id: &str, version: u64) -> Result<Record<Model
             if written != actual {
                 return Err(format!(
                     "record digest mismatch: the record says {written:?} but its header, model, \
-                     background and provenance hash to {actual}; the file was altered or damaged"
+                     background and provenance hash to {actual}; the record was altered or damaged"
                 ));
             }
             record.record_digest = written;
         }
         // A format-1 record has no digest; one that claims one was altered.
-        LEGACY_FORMAT_VERSION if record.record_digest.is_empty() => {}
+        LEGACY_FORMAT_VERSION if legacy && record.record_digest.is_empty() => {}
         version => {
             return Err(format!(
                 "format version {version} is not one this build reads ({FORMAT_VERSION}, or \
-                 {LEGACY_FORMAT_VERSION} without a record digest)"
+                 {LEGACY_FORMAT_VERSION} without a record digest where this store had such records)"
             ));
         }
     }
     if record.model_id != model_id || record.spec.model_id != model_id || record.version != version
     {
         return Err(format!(
-            "holds {:?} version {} (spec says {:?}) but its path says {model_id:?} version {version}",
+            "holds {:?} version {} (spec says {:?}) but is stored as {model_id:?} version {version}",
             record.model_id, record.version, record.spec.model_id
         ));
     }
@@ -523,7 +550,7 @@ fn read_record(path: &Path, model_id: &str, version: u64) -> Result<Record<Model
     let checksum = spec_checksum(&record.spec).map_err(|error| error.to_string())?;
     if checksum != record.checksum {
         return Err(format!(
-            "checksum mismatch: the header says {} but the content hashes to {checksum}; the file was altered or damaged",
+            "checksum mismatch: the header says {} but the content hashes to {checksum}; the record was altered or damaged",
             record.checksum
         ));
     }

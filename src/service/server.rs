@@ -31,7 +31,7 @@ use super::status::{ServiceError, code_label, transport_status};
 use super::stream::StreamStats;
 use super::tls::{self, ServerTls, TlsFiles};
 use crate::drift::DriftTracker;
-use crate::registry::{LoadProblem, Registry};
+use crate::registry::{LoadProblem, Registry, StoreUrl};
 use crate::telemetry::{self, LogFormat};
 
 /// Server settings with their defaults. A plain struct: the binary fills it
@@ -43,6 +43,13 @@ pub struct Config {
     /// The registry's directory; `None` uses the registry's default
     /// (`$XDG_DATA_HOME/apportion` or `~/.local/share/apportion`).
     pub data_dir: Option<PathBuf>,
+    /// The PostgreSQL database the registry is kept in, in place of the
+    /// directory, so that several replicas share it; `None`: the directory.
+    pub store: Option<StoreUrl>,
+    /// With `store`: how often every record is listed again, in case a
+    /// notification was missed (a lost listening connection also starts
+    /// one).
+    pub store_reread: Duration,
     /// Where Prometheus scrapes metrics; `None` records none.
     pub metrics_address: Option<SocketAddr>,
     pub log_format: LogFormat,
@@ -109,6 +116,8 @@ impl Default for Config {
         Config {
             address: SocketAddr::from(([127, 0, 0, 1], 50051)),
             data_dir: None,
+            store: None,
+            store_reread: Duration::from_secs(30),
             metrics_address: Some(SocketAddr::from(([127, 0, 0, 1], 9464))),
             log_format: LogFormat::Human,
             log_filter: "info".to_string(),
@@ -194,13 +203,14 @@ pub struct State {
 }
 
 impl State {
-    /// Opens the registry in `config.data_dir` (or the default directory).
-    /// Files that could not be loaded are returned for the caller to log;
-    /// they are never served.
+    /// Opens the registry in `config.store`, else `config.data_dir` (or the
+    /// default directory). Records that could not be loaded are returned
+    /// for the caller to log; they are never served.
     pub fn open(config: &Config) -> Result<(State, Vec<LoadProblem>), ServiceError> {
-        let (registry, problems) = match &config.data_dir {
-            Some(dir) => Registry::open(dir)?,
-            None => Registry::open_default()?,
+        let (registry, problems) = match (&config.store, &config.data_dir) {
+            (Some(url), _) => Registry::open_postgres(url, config.store_reread)?,
+            (None, Some(dir)) => Registry::open(dir)?,
+            (None, None) => Registry::open_default()?,
         };
         let tokens = match &config.tokens_file {
             Some(path) => Some(Tokens::load(path)?),

@@ -7,7 +7,7 @@ use std::net::SocketAddr;
 use std::path::Path;
 use std::sync::Arc;
 
-use apportion::registry::Registry;
+use apportion::registry::{LoadProblem, Registry};
 use apportion::service::proto::attributions_client::AttributionsClient;
 use apportion::service::proto::diagnostics_client::DiagnosticsClient;
 use apportion::service::proto::registry_client::RegistryClient;
@@ -38,11 +38,18 @@ pub async fn start(data_dir: &Path) -> TestServer {
 }
 
 pub async fn start_with(config: Config) -> TestServer {
-    let (state, problems) = State::open(&config).expect("the registry opens");
+    let (server, problems) = start_reporting(config).await;
     assert!(
         problems.is_empty(),
         "unexpected load problems: {problems:?}"
     );
+    server
+}
+
+/// [`start_with`], returning the records the registry could not load
+/// instead of refusing them.
+pub async fn start_reporting(config: Config) -> (TestServer, Vec<LoadProblem>) {
+    let (state, problems) = State::open(&config).expect("the registry opens");
     let registry = state.registry().clone();
     let streams = state.stream_stats().clone();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
@@ -58,14 +65,15 @@ pub async fn start_with(config: Config) -> TestServer {
         .connect()
         .await
         .expect("the server accepts connections");
-    TestServer {
+    let server = TestServer {
         address,
         registry,
         streams,
         channel,
         stop,
         task,
-    }
+    };
+    (server, problems)
 }
 
 impl TestServer {
