@@ -35,6 +35,7 @@ def main():
     registry = rpc.RegistryStub(channel)
     attributions = rpc.AttributionsStub(channel)
     diagnostics = rpc.DiagnosticsStub(channel)
+    monitoring = rpc.MonitoringStub(channel)
 
     health = health_pb2_grpc.HealthStub(channel).Check(health_pb2.HealthCheckRequest(service=""), timeout=TIMEOUT)
     check("health reports SERVING", health.status == health_pb2.HealthCheckResponse.SERVING)
@@ -42,7 +43,8 @@ def main():
     reflection = reflection_pb2_grpc.ServerReflectionStub(channel)
     answers = reflection.ServerReflectionInfo(iter([reflection_pb2.ServerReflectionRequest(list_services="")]), timeout=TIMEOUT)
     names = {s.name for answer in answers for s in answer.list_services_response.service}
-    check("reflection lists the API", {"apportion.v1.Registry", "apportion.v1.Attributions"} <= names, str(names))
+    check("reflection lists the API",
+          {"apportion.v1.Registry", "apportion.v1.Attributions", "apportion.v1.Monitoring"} <= names, str(names))
 
     echo = diagnostics.Echo(pb.EchoRequest(payload=b"ping"), timeout=TIMEOUT)
     check("echo returns its payload", echo.payload == b"ping")
@@ -91,6 +93,15 @@ def main():
     # Efficiency of Shapley values ("A value for n-person games", 1953).
     check("exact Shapley values are efficient", abs(total - (exact.value_full - exact.value_empty)) < 1e-9
           and exact.converged, f"{total} vs {exact.value_full - exact.value_empty}")
+
+    # The two answers above are in the drift windows (both in the current
+    # one unless an hour boundary fell between them); too few to flag.
+    drift = monitoring.AttributionDrift(pb.AttributionDriftRequest(model_id="py-linear"), timeout=TIMEOUT)
+    check("drift counts the answers given",
+          [p.name for p in drift.players] == ["income", "rent", "payments"]
+          and all(p.recent_count + p.reference_count == 2 and p.recent_count >= 1 and not p.shifted
+                  for p in drift.players),
+          str(drift))
 
     tree_answer = attributions.Explain(pb.ExplainRequest(model_id="py-trees", instance=x), timeout=TIMEOUT)
     check("tree model uses the exact tree algorithm", tree_answer.estimator_used == pb.ESTIMATOR_TREE_EXACT)
