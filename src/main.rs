@@ -156,6 +156,9 @@ struct ExplainArgs {
     /// Principal reasons to list per row; 0 is 4.
     #[arg(long, default_value_t = 0)]
     max_reasons: u32,
+    /// Spend half of a sampled answer's budget on the players at the edge of the reasons list.
+    #[arg(long)]
+    aim_at_reasons: bool,
 }
 
 /// Settings of `serve`. Each is taken from its flag, else its environment
@@ -460,6 +463,7 @@ fn explain_template(
         tolerance: args.tolerance,
         fixed_values: args.fixed_values.clone(),
         max_reasons: args.max_reasons,
+        aim_at_reasons: args.aim_at_reasons,
         request_id: "cli".into(),
         ..Default::default()
     })

@@ -158,25 +158,10 @@ pub fn principal_reasons(
         codes,
         statements,
     } = *attributions;
-    let mut units: Vec<Unit> = Vec::new();
-    let mut by_code: std::collections::HashMap<&str, usize> = Default::default();
-    for player in 0..values.len() {
-        if statements[player].is_empty() {
-            continue;
-        }
-        let code = codes[player].as_str();
-        match by_code.get(code) {
-            Some(&unit) if !code.is_empty() => units[unit].players.push(player),
-            _ => {
-                if !code.is_empty() {
-                    by_code.insert(code, units.len());
-                }
-                units.push(Unit {
-                    players: vec![player],
-                });
-            }
-        }
-    }
+    let units: Vec<Unit> = self::units(codes, statements)
+        .into_iter()
+        .map(|players| Unit { players })
+        .collect();
     let weight = |unit: &Unit, draw: &dyn Fn(usize) -> f64| -> f64 {
         unit.players.iter().map(|&p| sign * draw(p)).sum()
     };
@@ -241,6 +226,30 @@ pub fn principal_reasons(
         set_probability,
         certain: set_probability >= level,
     }
+}
+
+/// The candidate reasons, each as its players in player order: every player
+/// with a statement, those sharing a non-empty reason code together, in the
+/// order of their first player.
+pub fn units(codes: &[String], statements: &[String]) -> Vec<Vec<usize>> {
+    let mut units: Vec<Vec<usize>> = Vec::new();
+    let mut by_code: std::collections::HashMap<&str, usize> = Default::default();
+    for player in 0..statements.len() {
+        if statements[player].is_empty() {
+            continue;
+        }
+        let code = codes[player].as_str();
+        match by_code.get(code) {
+            Some(&unit) if !code.is_empty() => units[unit].push(player),
+            _ => {
+                if !code.is_empty() {
+                    by_code.insert(code, units.len());
+                }
+                units.push(vec![player]);
+            }
+        }
+    }
+    units
 }
 
 /// The indices of the units with a positive weight, largest first (ties in

@@ -1146,7 +1146,12 @@ async fn the_binary_never_shows_the_store_password() {
 
     let unreachable = free_address();
     let failed = Command::new(env!("CARGO_BIN_EXE_apportion"))
-        .args(["serve", "--plaintext", "--address", &free_address().to_string()])
+        .args([
+            "serve",
+            "--plaintext",
+            "--address",
+            &free_address().to_string(),
+        ])
         .args(["--metrics-address", &free_address().to_string()])
         .arg("--store")
         .arg(format!(

@@ -12,6 +12,7 @@ use ndarray::ArrayView2;
 use super::cancel::CancelFlag;
 use super::coalition::Coalition;
 use super::error::{EngineError, ErrorKind, Result};
+use super::estimate::boundary::{Boundary, Goal};
 use super::estimate::{self, Estimate, EstimatorKind, Stopping};
 use super::game::{CachedGame, Game, ModelGame};
 use super::model::{Link, Structure};
@@ -87,6 +88,11 @@ pub struct Request {
     pub enumeration_cap: usize,
     /// Most model rows one coalition value may cost.
     pub max_coalition_rows: usize,
+    /// The reasons the answer will list, when sampling should aim at them:
+    /// a sampled Shapley estimate over a deterministic removal then gets
+    /// half the budget and half the evaluations, and the players on the
+    /// list's boundary the rest ([`estimate::boundary`]).
+    pub reasons_goal: Option<Arc<Goal>>,
 }
 
 impl Request {
@@ -105,6 +111,7 @@ impl Request {
             seed: 0,
             enumeration_cap: plan::DEFAULT_ENUMERATION_CAP,
             max_coalition_rows: DEFAULT_MAX_COALITION_ROWS,
+            reasons_goal: None,
         }
     }
 }
@@ -203,6 +210,7 @@ pub struct Job {
     plan_reason: String,
     predicted: Duration,
     minimum: Duration,
+    reasons_goal: Option<Arc<Goal>>,
     /// When [`prepare`] was called: the explanation's elapsed time counts
     /// from here.
     prepared_at: Instant,
@@ -231,6 +239,9 @@ pub struct Explanation {
     pub cache_hits: u64,
     /// From [`prepare`] to the end of [`Job::run`].
     pub elapsed: Duration,
+    /// What the boundary phase did, when the request aimed at its reasons
+    /// and the answer was sampled.
+    pub boundary: Option<Boundary>,
 }
 
 /// Validates `request` against `model` and plans it. Every refusal names
@@ -260,6 +271,7 @@ pub struct JobTemplate {
     plan_reason: String,
     predicted: Duration,
     minimum: Duration,
+    reasons_goal: Option<Arc<Goal>>,
 }
 
 impl std::fmt::Debug for JobTemplate {
@@ -385,6 +397,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         plan_reason: chosen.reason,
         predicted: chosen.predicted,
         minimum: chosen.minimum,
+        reasons_goal: request.reasons_goal.clone(),
     })
 }
 
@@ -443,6 +456,18 @@ impl JobTemplate {
             plan_reason: self.plan_reason.clone(),
             predicted: self.predicted,
             minimum: self.minimum,
+            // The list's probabilities are drawn with the instance's seed,
+            // as its answer's reasons will be.
+            reasons_goal: self.reasons_goal.as_ref().map(|goal| {
+                if goal.seed == seed {
+                    goal.clone()
+                } else {
+                    Arc::new(Goal {
+                        seed,
+                        ..Goal::clone(goal)
+                    })
+                }
+            }),
             prepared_at,
         })
     }
@@ -488,6 +513,7 @@ impl Job {
         stopping.check_cancelled()?;
         let model = self.model.as_ref();
         let players = model.players();
+        let mut boundary = None;
         let (estimate, counts) = match &self.work {
             Work::TreeExact => {
                 let Structure::Trees(ensemble) = model.structure() else {
@@ -591,7 +617,11 @@ impl Job {
                 };
                 (sampled.estimate, counts)
             }
-            Work::Enumerate { .. } | Work::Sample { .. } => self.run_on_game(stopping)?,
+            Work::Enumerate { .. } | Work::Sample { .. } => {
+                let (estimate, counts, aimed) = self.run_on_game(stopping)?;
+                boundary = aimed;
+                (estimate, counts)
+            }
         };
         let finite = estimate.value_full.is_finite()
             && estimate.value_empty.is_finite()
@@ -610,12 +640,13 @@ impl Job {
             model_rows_evaluated: counts.model_rows,
             cache_hits: counts.cache_hits,
             elapsed: self.prepared_at.elapsed(),
+            boundary,
         })
     }
 
     /// Enumeration and sampling: removal ∘ model ∘ target behind the
     /// per-request cache.
-    fn run_on_game(&self, mut stopping: Stopping) -> Result<(Estimate, Counts)> {
+    fn run_on_game(&self, mut stopping: Stopping) -> Result<(Estimate, Counts, Option<Boundary>)> {
         let model = self.model.as_ref();
         let background = model.background();
         let removal: Box<dyn Removal + '_> =
@@ -651,6 +682,7 @@ impl Job {
             cached.values(&ends, &mut values);
             stopping.tolerance = estimate::default_tolerance(values[0], values[1]);
         }
+        let mut boundary = None;
         let estimate = match self.work {
             Work::Sample {
                 sampler,
@@ -659,19 +691,44 @@ impl Job {
             } => {
                 stopping.max_evaluations = max_evaluations;
                 let seed = self.seed;
-                match sampler {
-                    Sampler::Permutation => {
-                        estimate::permutation::shapley(&cached, &stopping, seed)?
-                    }
+                let aim = self.reasons_goal.as_deref().filter(|_| {
+                    self.summary == Summary::Shapley
+                        && !cached.is_noisy()
+                        && max_evaluations / 2
+                            >= plan::sampler_minimum(self.estimator, model.players().len())
+                });
+                // Aiming at the reasons, the sampler gets the first half of
+                // the evaluations and of the time left; the boundary the
+                // rest.
+                let first = match aim {
+                    Some(_) => Stopping {
+                        max_evaluations: max_evaluations / 2,
+                        deadline: stopping.deadline.map(|deadline| {
+                            let now = Instant::now();
+                            now + deadline.saturating_duration_since(now) / 2
+                        }),
+                        ..stopping.clone()
+                    },
+                    None => stopping.clone(),
+                };
+                let estimate = match sampler {
+                    Sampler::Permutation => estimate::permutation::shapley(&cached, &first, seed)?,
                     Sampler::PairedRegression(kernel) => {
-                        estimate::regression::paired(&cached, kernel, &stopping, seed)?
+                        estimate::regression::paired(&cached, kernel, &first, seed)?
                     }
                     Sampler::LeverageRegression => {
-                        estimate::regression::leverage(&cached, &stopping, seed)?
+                        estimate::regression::leverage(&cached, &first, seed)?
                     }
-                    Sampler::MaximumSampleReuse => {
-                        estimate::msr::banzhaf(&cached, &stopping, seed)?
+                    Sampler::MaximumSampleReuse => estimate::msr::banzhaf(&cached, &first, seed)?,
+                };
+                match aim {
+                    Some(goal) => {
+                        let (refined, report) =
+                            estimate::boundary::refine(&cached, estimate, goal, &stopping, seed)?;
+                        boundary = Some(report);
+                        refined
                     }
+                    None => estimate,
                 }
             }
             _ => estimate::exact::explain_within(&cached, self.summary, &stopping)?,
@@ -681,7 +738,7 @@ impl Job {
             model_rows: cached.model_rows(),
             cache_hits: cached.cache_hits(),
         };
-        Ok((estimate, counts))
+        Ok((estimate, counts, boundary))
     }
 
     /// The tolerance the request gave (0: the default, taken from the

@@ -274,7 +274,7 @@ const TREE_ROWS_MINIMUM: u64 = 2;
 /// (each sampler's first round, as it refuses below it; `2^p` always
 /// suffices because no coalition is evaluated twice). Exact estimators and
 /// the joint row sampler are priced elsewhere.
-fn sampler_minimum(estimator: EstimatorKind, players: usize) -> u64 {
+pub(crate) fn sampler_minimum(estimator: EstimatorKind, players: usize) -> u64 {
     let p = players as u64;
     let need = match estimator {
         _ if players == 1 => 2,

@@ -110,6 +110,7 @@ impl AttributionsService {
             .min(shared.limits.evaluations);
         engine_request.max_coalition_rows = shared.limits.coalition_rows;
         let entry = shared.registry.get(&shape.model_id, shape.version)?;
+        engine_request.reasons_goal = convert::reasons_goal(&entry, &checked);
         let template = Arc::new(engine::prepare_template(entry.prepared(), &engine_request)?);
         // Each instance gets its budget from when it starts; the call's
         // deadline (less the margin) bounds them all and the admission.
@@ -240,6 +241,7 @@ async fn explain_one(
     request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
     request.max_coalition_rows = shared.limits.coalition_rows;
     let entry = shared.registry.get(&message.model_id, message.version)?;
+    request.reasons_goal = convert::reasons_goal(&entry, &message);
     let job = engine::prepare(entry.prepared(), request)?;
     // Work that cannot start before the deadline (or, without one, within
     // the budget) is refused rather than queued.

@@ -3,12 +3,14 @@
 //! values, options given to the wrong choice, matrix shapes) and names the
 //! API field at fault.
 
+use std::sync::Arc;
 use std::time::Duration;
 
 use ndarray::Array2;
 
 use super::proto;
 use super::status::ServiceError;
+use crate::engine::estimate::boundary::Goal;
 use crate::engine::job::{self, RemovalChoice, Request};
 use crate::engine::{EstimatorKind, Kernel, Players, Summary, Target};
 use crate::model::Link;
@@ -862,6 +864,13 @@ pub fn explanation_echoing(
             Outcome::Adverse => proto::Outcome::Adverse,
         } as i32,
         reasons_note: listed.note,
+        boundary_evaluations: answer.boundary.as_ref().map_or(0, |b| b.evaluations),
+        boundary_players: answer.boundary.as_ref().map_or_else(Vec::new, |b| {
+            b.players
+                .iter()
+                .filter_map(|&p| names.get(p).cloned())
+                .collect()
+        }),
     }
 }
 
@@ -872,18 +881,28 @@ struct Listed {
     note: String,
 }
 
-/// Reasons in the decision's direction and space: for OUTPUT and
-/// PROBABILITY targets in the decision's space, the players that pushed the
-/// value toward the unfavourable side; for LOSS those that raised the loss;
-/// none for DATASET_LOSS (global importance decides nothing) or a target
-/// in another space than the decision's (the order of reasons can differ
-/// between margin and probability).
-fn listed_reasons(
+/// How an answer's reasons are listed: which sign of a contribution is
+/// adverse, in which space, how many, and the level the set must reach.
+struct Terms {
+    sign: f64,
+    /// The target's space; `None` for LOSS.
+    space: Option<Space>,
+    decision: Decision,
+    limit: usize,
+    level: f64,
+}
+
+/// The terms of the reasons in the decision's direction and space: for
+/// OUTPUT and PROBABILITY targets in the decision's space, the players that
+/// pushed the value toward the unfavourable side; for LOSS those that
+/// raised the loss. Why none are listed otherwise: DATASET_LOSS (global
+/// importance decides nothing), or a target in another space than the
+/// decision's (the order of reasons can differ between margin and
+/// probability).
+fn reason_terms(
     entry: &Entry,
     request: &proto::ExplainRequest,
-    seed: u64,
-    estimate: &crate::engine::Estimate,
-) -> Listed {
+) -> std::result::Result<Terms, String> {
     let mut decision = entry.info().decision.unwrap_or_default();
     // Validated with the request (see `explain_request`).
     match proto::Favourable::try_from(request.favourable) {
@@ -894,19 +913,10 @@ fn listed_reasons(
     if let Ok(Some(space)) = space_from("decision_space", request.decision_space) {
         decision.space = Some(space);
     }
-    let none = |note: String| Listed {
-        reasons: reasons::Reasons {
-            reasons: Vec::new(),
-            set_probability: 1.0,
-            certain: true,
-        },
-        outcome: Outcome::Unknown,
-        note,
-    };
     let target = proto::Target::try_from(request.target).unwrap_or(proto::Target::Output);
     let (sign, space) = match target {
         proto::Target::DatasetLoss => {
-            return none(
+            return Err(
                 "TARGET_DATASET_LOSS measures global importance; it lists no reasons".into(),
             );
         }
@@ -918,7 +928,7 @@ fn listed_reasons(
                 Space::Probability
             };
             if decision.space.is_some_and(|s| s != space) {
-                return none(format!(
+                return Err(format!(
                     "the decision is taken on the {}; ask for {} to list reasons",
                     if space == Space::Output {
                         "probability"
@@ -949,6 +959,54 @@ fn listed_reasons(
     } else {
         request.reasons_level
     };
+    Ok(Terms {
+        sign,
+        space,
+        decision,
+        limit,
+        level,
+    })
+}
+
+/// What a request that aims at its reasons asks the engine to separate;
+/// `None` when it does not aim or lists no reasons.
+pub fn reasons_goal(entry: &Entry, request: &proto::ExplainRequest) -> Option<Arc<Goal>> {
+    if !request.aim_at_reasons {
+        return None;
+    }
+    let terms = reason_terms(entry, request).ok()?;
+    Some(Arc::new(Goal {
+        sign: terms.sign,
+        limit: terms.limit,
+        level: terms.level,
+        codes: entry.reason_codes().to_vec(),
+        statements: entry.reason_statements().to_vec(),
+        seed: request.seed,
+    }))
+}
+
+/// The reasons of an answer (see [`reason_terms`]), the outcome, and why
+/// there are none.
+fn listed_reasons(
+    entry: &Entry,
+    request: &proto::ExplainRequest,
+    seed: u64,
+    estimate: &crate::engine::Estimate,
+) -> Listed {
+    let terms = match reason_terms(entry, request) {
+        Ok(terms) => terms,
+        Err(note) => {
+            return Listed {
+                reasons: reasons::Reasons {
+                    reasons: Vec::new(),
+                    set_probability: 1.0,
+                    certain: true,
+                },
+                outcome: Outcome::Unknown,
+                note,
+            };
+        }
+    };
     let listed = reasons::principal_reasons(
         &reasons::Attributions {
             values: &estimate.values,
@@ -956,13 +1014,15 @@ fn listed_reasons(
             codes: entry.reason_codes(),
             statements: entry.reason_statements(),
         },
-        sign,
-        limit,
-        level,
+        terms.sign,
+        terms.limit,
+        terms.level,
         seed,
     );
-    let outcome = match (space, decision.space) {
-        (Some(space), Some(decided)) if space == decided => decision.outcome(estimate.value_full),
+    let outcome = match (terms.space, terms.decision.space) {
+        (Some(space), Some(decided)) if space == decided => {
+            terms.decision.outcome(estimate.value_full)
+        }
         _ => Outcome::Unknown,
     };
     let note = if listed.reasons.is_empty() {

@@ -11,6 +11,7 @@
 //! removal makes each coalition value a mean of random draws, with a
 //! variance the game reports.
 
+pub mod boundary;
 pub mod exact;
 mod fit;
 pub mod linear;
