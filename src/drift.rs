@@ -157,7 +157,9 @@ struct Windows {
 pub struct DriftTracker {
     window_ms: u64,
     windows_kept: usize,
-    models: Mutex<HashMap<(String, u64), Windows>>,
+    /// By model id, then version: looked up by `&str` with no allocation
+    /// on the answer path.
+    models: Mutex<HashMap<String, HashMap<u64, Windows>>>,
 }
 
 /// One player's comparison.
@@ -193,24 +195,27 @@ impl DriftTracker {
     }
 
     /// Adds one answer's attributions (in player order) at `at_unix_ms`;
-    /// true when this opened a window after the newest one, which has then
+    /// `players` names them, asked only for a version not seen before.
+    /// True when this opened a window after the newest one, which has then
     /// closed.
     pub fn record(
         &self,
         model_id: &str,
         version: u64,
-        players: &[&str],
+        players: impl FnOnce() -> Vec<String>,
         values: &[f64],
         at_unix_ms: u64,
     ) -> bool {
         let start = at_unix_ms - at_unix_ms % self.window_ms;
         let mut models = self.models.lock().unwrap_or_else(|e| e.into_inner());
-        let windows = models
-            .entry((model_id.to_string(), version))
-            .or_insert_with(|| Windows {
-                players: players.iter().map(|p| p.to_string()).collect(),
-                kept: VecDeque::new(),
-            });
+        let versions = match models.get_mut(model_id) {
+            Some(versions) => versions,
+            None => models.entry(model_id.to_string()).or_default(),
+        };
+        let windows = versions.entry(version).or_insert_with(|| Windows {
+            players: players(),
+            kept: VecDeque::new(),
+        });
         if windows.players.len() != values.len() {
             return false;
         }
@@ -253,7 +258,11 @@ impl DriftTracker {
     /// 0).
     pub fn forget(&self, model_id: &str, version: u64) {
         let mut models = self.models.lock().unwrap_or_else(|e| e.into_inner());
-        models.retain(|(id, v), _| !(id == model_id && (version == 0 || *v == version)));
+        if version == 0 {
+            models.remove(model_id);
+        } else if let Some(versions) = models.get_mut(model_id) {
+            versions.remove(&version);
+        }
     }
 
     /// The last `recent_windows` windows kept against the
@@ -280,7 +289,7 @@ impl DriftTracker {
         reference_windows: usize,
     ) -> Option<Drift> {
         let models = self.models.lock().unwrap_or_else(|e| e.into_inner());
-        let windows = models.get(&(model_id.to_string(), version))?;
+        let windows = models.get(model_id)?.get(&version)?;
         let kept = windows.kept.len().checked_sub(skipped)?;
         if kept == 0 {
             return None;
@@ -359,6 +368,10 @@ mod tests {
         assert_eq!(bin_of(f64::NAN), (0, 0));
     }
 
+    fn names(players: &[&str]) -> Vec<String> {
+        players.iter().map(|p| p.to_string()).collect()
+    }
+
     fn summary(values: impl IntoIterator<Item = f64>) -> Summary {
         let mut summary = Summary::default();
         for value in values {
@@ -402,7 +415,7 @@ mod tests {
         let tracker = DriftTracker::new(1_000, 4);
         let players = ["a", "b"];
         for (at, a) in [(10, 1.0), (999, 3.0), (1_000, -2.0), (2_500, 5.0)] {
-            tracker.record("m", 1, &players, &[a, 0.0], at);
+            tracker.record("m", 1, || names(&players), &[a, 0.0], at);
         }
         let drift = tracker.compare("m", 1, 1, 0).unwrap();
         assert_eq!(drift.reference_span, (0, 2_000));
@@ -415,7 +428,7 @@ mod tests {
         assert!(!a.shifted, "too few samples to flag");
         // Windows past the number kept are forgotten, oldest first.
         for at in [3_000, 4_000, 5_000] {
-            tracker.record("m", 1, &players, &[0.0, 0.0], at);
+            tracker.record("m", 1, || names(&players), &[0.0, 0.0], at);
         }
         let drift = tracker.compare("m", 1, 1, 0).unwrap();
         assert_eq!(drift.reference_span, (2_000, 5_000));
@@ -445,7 +458,13 @@ mod tests {
                         }
                     })
                     .collect();
-                tracker.record("m", 1, &players, &values, window * 1_000 + k as u64 % 1_000);
+                tracker.record(
+                    "m",
+                    1,
+                    || names(&players),
+                    &values,
+                    window * 1_000 + k as u64 % 1_000,
+                );
             }
         }
         tracker.compare("m", 1, 1, 0).unwrap()

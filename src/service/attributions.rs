@@ -136,6 +136,11 @@ impl AttributionsService {
             };
             let template = template.clone();
             let flag = cancel.0.clone();
+            let pool = shared.pool.clone();
+            let (shared, entry, shape) = (shared.clone(), entry.clone(), shape.clone());
+            // Each chunk also converts its own answers, so the conversion
+            // runs on the compute threads side by side, not one after
+            // another where the call arrived.
             let work = move || {
                 chunk
                     .into_iter()
@@ -146,6 +151,11 @@ impl AttributionsService {
                             item.label
                         };
                         let seed = item.seed.unwrap_or(shape.seed);
+                        let request_id = if item.request_id.is_empty() {
+                            shape.request_id.clone()
+                        } else {
+                            item.request_id
+                        };
                         let result = template
                             .job(item.instance, label, seed)
                             .and_then(|job| {
@@ -155,12 +165,23 @@ impl AttributionsService {
                                 }
                                 counted(job.run_cancellable(deadline, flag.clone()))
                             })
-                            .map(|answer| (answer, seed));
-                        (index, item.request_id, result)
+                            .map(|answer| {
+                                record(&answer);
+                                let echo = convert::Echo {
+                                    request_id: &request_id,
+                                    seed,
+                                    request: &shape,
+                                };
+                                let explanation =
+                                    convert::explanation_echoing(&entry, &echo, &answer, budget);
+                                log(&shared, "ExplainBatch", &explanation);
+                                explanation
+                            })
+                            .map_err(|error| unless_stopping(&shared, error));
+                        self::item(request_id, index as u64, result, "ExplainBatch")
                     })
                     .collect::<Vec<_>>()
             };
-            let pool = shared.pool.clone();
             chunks.push((
                 indices,
                 tokio::spawn(async move { pool.run(timing, work).await }),
@@ -172,31 +193,7 @@ impl AttributionsService {
                 .await
                 .map_err(|e| ServiceError::Internal(format!("a batch chunk failed: {e}")))?;
             match computed {
-                Ok(answers) => {
-                    for (index, request_id, result) in answers {
-                        let request_id = if request_id.is_empty() {
-                            shape.request_id.clone()
-                        } else {
-                            request_id
-                        };
-                        let result = match result {
-                            Ok((answer, seed)) => {
-                                record(&answer);
-                                let echo = convert::Echo {
-                                    request_id: &request_id,
-                                    seed,
-                                    request: &shape,
-                                };
-                                let explanation =
-                                    convert::explanation_echoing(&entry, &echo, &answer, budget);
-                                log(shared, "ExplainBatch", &explanation);
-                                Ok(explanation)
-                            }
-                            Err(error) => Err(unless_stopping(shared, error)),
-                        };
-                        items.push(item(request_id, index as u64, result, "ExplainBatch"));
-                    }
-                }
+                Ok(answers) => items.extend(answers),
                 // A chunk that could not start in time: its instances say
                 // so, the others keep their answers.
                 Err(refused) => {

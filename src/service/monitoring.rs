@@ -28,16 +28,17 @@ pub(super) fn track(tracker: &DriftTracker, explanation: &proto::Explanation) {
     let at_unix_ms = SystemTime::now()
         .duration_since(UNIX_EPOCH)
         .map_or(0, |since| since.as_millis() as u64);
-    let players: Vec<&str> = explanation
-        .attributions
-        .iter()
-        .map(|a| a.name.as_str())
-        .collect();
     let values: Vec<f64> = explanation.attributions.iter().map(|a| a.value).collect();
     let opened = tracker.record(
         &explanation.model_id,
         explanation.version,
-        &players,
+        || {
+            explanation
+                .attributions
+                .iter()
+                .map(|a| a.name.clone())
+                .collect()
+        },
         &values,
         at_unix_ms,
     );
