@@ -8,11 +8,14 @@
 
 #![cfg(unix)]
 
+mod support;
+
 use std::collections::{BTreeMap, BTreeSet};
-use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::ffi::OsStr;
+use std::net::SocketAddr;
 use std::path::Path;
-use std::process::{Child, Command};
-use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use std::process::Child;
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use apportion::service::proto::registry_client::RegistryClient;
 use apportion::service::proto::{self, register_model_request::Model};
@@ -25,42 +28,10 @@ const CLIENTS: usize = 3;
 /// Most registrations one client sends in one cycle.
 const PER_CLIENT: usize = 60;
 
-fn free_address() -> SocketAddr {
-    TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-}
-
 /// Starts the binary on a free loopback port over `dir`; returns once it
 /// accepts connections.
 fn start(dir: &Path) -> (Child, SocketAddr) {
-    let address = free_address();
-    let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
-    // No setting inherited from the environment.
-    for (variable, _) in std::env::vars_os() {
-        if variable.to_string_lossy().starts_with("APPORTION_") {
-            command.env_remove(variable);
-        }
-    }
-    let child = command
-        .args(["serve", "--plaintext", "--address", &address.to_string()])
-        .arg("--data-dir")
-        .arg(dir)
-        .args(["--metrics-address", &free_address().to_string()])
-        .args(["--log-filter", "error"])
-        .env_remove("RUST_LOG")
-        .spawn()
-        .unwrap();
-    let started = Instant::now();
-    while TcpStream::connect(address).is_err() {
-        assert!(
-            started.elapsed() < Duration::from_secs(60),
-            "the server never listened"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    (child, address)
+    support::spawn_binary([OsStr::new("--data-dir"), dir.as_os_str()])
 }
 
 /// A small logistic model whose description names the registration, so a

@@ -11,7 +11,6 @@
 
 mod support;
 
-use std::net::SocketAddr;
 use std::time::Duration;
 
 use apportion::service::Config;
@@ -80,18 +79,6 @@ fn small_request() -> proto::ExplainRequest {
     }
 }
 
-/// One HTTP/1.0 GET of the metrics endpoint, read to the end.
-async fn scrape(address: SocketAddr) -> std::io::Result<String> {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    let mut stream = tokio::net::TcpStream::connect(address).await?;
-    stream
-        .write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
-        .await?;
-    let mut response = Vec::new();
-    stream.read_to_end(&mut response).await?;
-    Ok(String::from_utf8_lossy(&response).into_owned())
-}
-
 /// The value of an unlabelled counter in a Prometheus text exposition
 /// (prometheus.io, "Exposition formats"), 0 while it is absent.
 fn counter(body: &str, name: &str) -> f64 {
@@ -108,18 +95,7 @@ fn counter(body: &str, name: &str) -> f64 {
 
 #[tokio::test]
 async fn a_cancelled_exact_call_stops_computing_and_the_server_keeps_serving() {
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
-    let metrics = SocketAddr::from(([127, 0, 0, 1], port));
-    // Installed from a plain thread so the exporter runs on its own
-    // runtime, not this test's.
-    std::thread::spawn(move || apportion::telemetry::install_metrics(metrics))
-        .join()
-        .unwrap()
-        .unwrap();
+    let metrics = support::serve_metrics();
 
     let dir = tempfile::tempdir().unwrap();
     // One compute thread: if the cancelled computation kept it, no later
@@ -154,7 +130,7 @@ async fn a_cancelled_exact_call_stops_computing_and_the_server_keeps_serving() {
 
     let mut cancelled = 0.0;
     for _attempt in 0..600 {
-        if let Ok(body) = scrape(metrics).await {
+        if let Ok(body) = support::scrape(metrics).await {
             cancelled = counter(&body, "apportion_computations_cancelled_total");
             if cancelled >= 1.0 {
                 break;

@@ -8,7 +8,6 @@
 
 mod support;
 
-use std::net::SocketAddr;
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use apportion::service::Config;
@@ -91,18 +90,6 @@ async fn next_window() {
     tokio::time::sleep(Duration::from_millis(left as u64 + 20)).await;
 }
 
-async fn scrape(address: SocketAddr) -> String {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    let mut stream = tokio::net::TcpStream::connect(address).await.unwrap();
-    stream
-        .write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
-        .await
-        .unwrap();
-    let mut response = Vec::new();
-    stream.read_to_end(&mut response).await.unwrap();
-    String::from_utf8_lossy(&response).into_owned()
-}
-
 /// A gauge's value for one model and player in a Prometheus text
 /// exposition (prometheus.io, "Exposition formats").
 fn gauge(body: &str, name: &str, player: &str) -> Option<f64> {
@@ -113,17 +100,7 @@ fn gauge(body: &str, name: &str, player: &str) -> Option<f64> {
 
 #[tokio::test]
 async fn a_feature_whose_effect_switches_on_is_flagged_and_no_other() {
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
-    let metrics = SocketAddr::from(([127, 0, 0, 1], port));
-    // From a plain thread, so the exporter runs on its own runtime.
-    std::thread::spawn(move || apportion::telemetry::install_metrics(metrics))
-        .join()
-        .unwrap()
-        .unwrap();
+    let metrics = support::serve_metrics();
     let dir = tempfile::tempdir().unwrap();
     let server = support::start_with(Config {
         data_dir: Some(dir.path().to_path_buf()),
@@ -191,7 +168,7 @@ async fn a_feature_whose_effect_switches_on_is_flagged_and_no_other() {
         .explain_batch(batch(&mut rng, 1, true))
         .await
         .unwrap();
-    let body = scrape(metrics).await;
+    let body = support::scrape(metrics).await.unwrap();
     let index = gauge(&body, "apportion_attribution_stability_index", "x3").expect(&body);
     assert!(index > 0.25, "{index}");
     let other = gauge(&body, "apportion_attribution_stability_index", "x0").expect(&body);

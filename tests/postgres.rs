@@ -14,7 +14,7 @@
 mod support;
 
 use std::collections::{BTreeMap, BTreeSet};
-use std::net::{SocketAddr, TcpListener as StdTcpListener, TcpStream as StdTcpStream};
+use std::net::{SocketAddr, TcpStream as StdTcpStream};
 use std::process::{Child, Command};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
@@ -879,41 +879,10 @@ async fn writes_fail_unavailable_while_the_database_is_away_and_reads_go_on() {
     relay.cut().await;
 }
 
-fn free_address() -> SocketAddr {
-    StdTcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-}
-
 /// Starts the binary on a free loopback port over the store; returns once
 /// it accepts connections (after migrating and loading).
 fn start_binary(store: &str) -> (Child, SocketAddr) {
-    let address = free_address();
-    let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
-    // No setting inherited from the environment.
-    for (variable, _) in std::env::vars_os() {
-        if variable.to_string_lossy().starts_with("APPORTION_") {
-            command.env_remove(variable);
-        }
-    }
-    let child = command
-        .args(["serve", "--plaintext", "--address", &address.to_string()])
-        .args(["--store", store])
-        .args(["--metrics-address", &free_address().to_string()])
-        .args(["--log-filter", "error"])
-        .env_remove("RUST_LOG")
-        .spawn()
-        .unwrap();
-    let started = Instant::now();
-    while StdTcpStream::connect(address).is_err() {
-        assert!(
-            started.elapsed() < Duration::from_secs(60),
-            "the server never listened"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    (child, address)
+    support::spawn_binary(["--store", store])
 }
 
 async fn client_of(address: SocketAddr) -> RegistryClient<Channel> {
@@ -1082,7 +1051,7 @@ async fn the_binary_never_shows_the_store_password() {
     );
     let logs = tempfile::tempdir().unwrap();
     let log_path = logs.path().join("serve.log");
-    let address = free_address();
+    let address = support::free_address();
     let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
     for (variable, _) in std::env::vars_os() {
         if variable.to_string_lossy().starts_with("APPORTION_") {
@@ -1095,7 +1064,7 @@ async fn the_binary_never_shows_the_store_password() {
     let mut child = command
         .args(["serve", "--plaintext", "--address", &address.to_string()])
         .args(["--store", &url])
-        .args(["--metrics-address", &free_address().to_string()])
+        .args(["--metrics-address", &support::free_address().to_string()])
         .args(["--log-filter", "debug", "--log-format", "json"])
         .env_remove("RUST_LOG")
         .stdout(log_file.try_clone().unwrap())
@@ -1144,15 +1113,15 @@ async fn the_binary_never_shows_the_store_password() {
         "--print-config showed the password"
     );
 
-    let unreachable = free_address();
+    let unreachable = support::free_address();
     let failed = Command::new(env!("CARGO_BIN_EXE_apportion"))
         .args([
             "serve",
             "--plaintext",
             "--address",
-            &free_address().to_string(),
+            &support::free_address().to_string(),
         ])
-        .args(["--metrics-address", &free_address().to_string()])
+        .args(["--metrics-address", &support::free_address().to_string()])
         .arg("--store")
         .arg(format!(
             "postgres://{user}:{secret}@{unreachable}/{database}"

@@ -1008,18 +1008,7 @@ async fn health_reflection_and_echo_answer() {
 async fn metrics_are_scraped_over_http() {
     // The Prometheus text exposition format (prometheus.io, "Exposition
     // formats"): one `name{labels} value` line per series.
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
-    let address = std::net::SocketAddr::from(([127, 0, 0, 1], port));
-    // Installed from a plain thread so the exporter runs on its own
-    // runtime, not this test's.
-    std::thread::spawn(move || apportion::telemetry::install_metrics(address))
-        .join()
-        .unwrap()
-        .unwrap();
+    let address = support::serve_metrics();
 
     let dir = tempfile::tempdir().unwrap();
     let server = support::start_with(Config {
@@ -1045,7 +1034,7 @@ async fn metrics_are_scraped_over_http() {
 
     let mut body = String::new();
     for _attempt in 0..50 {
-        if let Ok(text) = scrape(address).await
+        if let Ok(text) = support::scrape(address).await
             && text.contains("apportion_requests_total")
         {
             body = text;
@@ -1067,16 +1056,4 @@ async fn metrics_are_scraped_over_http() {
         assert!(body.contains(needle), "{needle} missing from:\n{body}");
     }
     server.stop().await;
-}
-
-/// One HTTP/1.0 GET, read to the end of the connection.
-async fn scrape(address: std::net::SocketAddr) -> std::io::Result<String> {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    let mut stream = tokio::net::TcpStream::connect(address).await?;
-    stream
-        .write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
-        .await?;
-    let mut response = Vec::new();
-    stream.read_to_end(&mut response).await?;
-    Ok(String::from_utf8_lossy(&response).into_owned())
 }

@@ -8,7 +8,10 @@
 
 #![cfg(unix)]
 
-use std::net::{SocketAddr, TcpListener, TcpStream};
+mod support;
+
+use std::ffi::OsStr;
+use std::net::SocketAddr;
 use std::path::Path;
 use std::process::{Child, Command};
 use std::time::{Duration, Instant};
@@ -26,43 +29,20 @@ use tonic_health::pb::health_client::HealthClient;
 const PLAYERS: usize = 22;
 const DRAIN_TIMEOUT_MS: u64 = 4_000;
 
-fn free_address() -> SocketAddr {
-    TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-}
-
 /// Starts the binary on a free loopback port over `dir`; returns once it
 /// accepts connections.
 fn start(dir: &Path) -> (Child, SocketAddr) {
-    let address = free_address();
-    let mut command = Command::new(env!("CARGO_BIN_EXE_apportion"));
-    for (variable, _) in std::env::vars_os() {
-        if variable.to_string_lossy().starts_with("APPORTION_") {
-            command.env_remove(variable);
-        }
-    }
-    let child = command
-        .args(["serve", "--plaintext", "--address", &address.to_string()])
-        .arg("--data-dir")
-        .arg(dir)
-        .args(["--metrics-address", &free_address().to_string()])
-        .args(["--compute-threads", "2", "--max-budget-ms", "3600000"])
-        .args(["--drain-timeout-ms", &DRAIN_TIMEOUT_MS.to_string()])
-        .args(["--log-filter", "error"])
-        .env_remove("RUST_LOG")
-        .spawn()
-        .unwrap();
-    let started = Instant::now();
-    while TcpStream::connect(address).is_err() {
-        assert!(
-            started.elapsed() < Duration::from_secs(60),
-            "the server never listened"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    (child, address)
+    let drain = DRAIN_TIMEOUT_MS.to_string();
+    support::spawn_binary([
+        OsStr::new("--data-dir"),
+        dir.as_os_str(),
+        OsStr::new("--compute-threads"),
+        OsStr::new("2"),
+        OsStr::new("--max-budget-ms"),
+        OsStr::new("3600000"),
+        OsStr::new("--drain-timeout-ms"),
+        OsStr::new(&drain),
+    ])
 }
 
 /// A logistic linear model on 22 features with 64 background rows: EXACT

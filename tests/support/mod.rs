@@ -131,3 +131,69 @@ pub fn worst_relative(got: &[f64], reference: &[f64]) -> (f64, usize) {
             |(worst, at), (i, e)| if e > worst { (e, i) } else { (worst, at) },
         )
 }
+
+/// A loopback address with a port that was free a moment ago.
+pub fn free_address() -> SocketAddr {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .expect("a free port")
+        .local_addr()
+        .expect("its address")
+}
+
+/// Starts the real `apportion serve --plaintext` on a free loopback port,
+/// with a free metrics port, errors-only logs, no `APPORTION_*` setting
+/// inherited from the environment, and `args` added; returns once it
+/// accepts connections (at most 60 s).
+pub fn spawn_binary<S: AsRef<std::ffi::OsStr>>(
+    args: impl IntoIterator<Item = S>,
+) -> (std::process::Child, SocketAddr) {
+    use std::time::{Duration, Instant};
+    let address = free_address();
+    let mut command = std::process::Command::new(env!("CARGO_BIN_EXE_apportion"));
+    for (variable, _) in std::env::vars_os() {
+        if variable.to_string_lossy().starts_with("APPORTION_") {
+            command.env_remove(variable);
+        }
+    }
+    let child = command
+        .args(["serve", "--plaintext", "--address", &address.to_string()])
+        .args(["--metrics-address", &free_address().to_string()])
+        .args(["--log-filter", "error"])
+        .args(args)
+        .env_remove("RUST_LOG")
+        .spawn()
+        .expect("the binary starts");
+    let started = Instant::now();
+    while std::net::TcpStream::connect(address).is_err() {
+        assert!(
+            started.elapsed() < Duration::from_secs(60),
+            "the server never listened"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    (child, address)
+}
+
+/// Installs the Prometheus exporter of this test process on a free
+/// loopback port, from a plain thread so it runs on its own runtime rather
+/// than the test's; one per test binary.
+pub fn serve_metrics() -> SocketAddr {
+    let address = free_address();
+    std::thread::spawn(move || apportion::telemetry::install_metrics(address))
+        .join()
+        .expect("the exporter's thread")
+        .expect("the exporter listens");
+    address
+}
+
+/// One HTTP/1.0 GET of the metrics endpoint, read to the end.
+pub async fn scrape(address: SocketAddr) -> std::io::Result<String> {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let mut stream = tokio::net::TcpStream::connect(address).await?;
+    stream
+        .write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
+        .await?;
+    let mut response = Vec::new();
+    stream.read_to_end(&mut response).await?;
+    Ok(String::from_utf8_lossy(&response).into_owned())
+}
