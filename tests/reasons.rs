@@ -536,6 +536,13 @@ async fn aiming_is_reported_over_grpc_and_only_where_it_applies() {
             .unwrap()
             .into_inner();
         assert!(answer.boundary_evaluations <= answer.coalitions_evaluated);
+        // relative_error is the norm of the std errors over that of the
+        // values (its proto definition).
+        let norm = |xs: &mut dyn Iterator<Item = f64>| xs.map(|x| x * x).sum::<f64>().sqrt();
+        let errors = norm(&mut answer.attributions.iter().map(|a| a.std_error));
+        let values = norm(&mut answer.attributions.iter().map(|a| a.value));
+        assert!(errors > 0.0, "a sampled answer");
+        assert!((answer.relative_error - errors / values).abs() <= 1e-12 * answer.relative_error);
         assert!(answer.coalitions_evaluated <= 64);
         for name in &answer.boundary_players {
             assert!(

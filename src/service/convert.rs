@@ -852,6 +852,7 @@ pub fn explanation_echoing(
         plan_reason: answer.plan_reason.clone(),
         cache_hits: answer.cache_hits,
         efficiency_gap: estimate.efficiency_gap(),
+        relative_error: estimate.relative_error(),
         reasons,
         selected,
         selection_value,

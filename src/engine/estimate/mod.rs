@@ -279,9 +279,21 @@ impl Estimate {
     }
 
     /// `v(all) - v(none) - Σ values`: zero (to rounding) for efficient
-    /// summaries.
+    /// summaries; not a measure of accuracy (see [`Estimate::relative_error`]).
     pub fn efficiency_gap(&self) -> f64 {
         self.value_full - self.value_empty - self.values.iter().sum::<f64>()
+    }
+
+    /// `‖std_errors‖₂ / ‖values‖₂`: the estimate's relative error, the
+    /// figure the engine bench reports as relative L2 error, estimated from
+    /// the answer itself. 0 with no error; infinite when every value is 0
+    /// but some std error is not.
+    pub fn relative_error(&self) -> f64 {
+        let errors = self.std_errors.iter().map(|e| e * e).sum::<f64>().sqrt();
+        if errors == 0.0 {
+            return 0.0;
+        }
+        errors / self.values.iter().map(|v| v * v).sum::<f64>().sqrt()
     }
 }
 
@@ -290,6 +302,35 @@ mod tests {
     use std::time::Duration;
 
     use super::*;
+
+    #[test]
+    fn the_relative_error_is_the_ratio_of_the_norms() {
+        // Its documented definition (common practice, no source): a
+        // 3-4-5 triangle on each side.
+        let estimate = |values: Vec<f64>, std_errors: Vec<f64>| Estimate {
+            values,
+            std_errors,
+            value_full: 0.0,
+            value_empty: 0.0,
+            converged: false,
+            selection: None,
+        };
+        let sampled = estimate(vec![3.0, -4.0], vec![0.3, 0.4]);
+        assert!((sampled.relative_error() - 0.1).abs() < 1e-15);
+        assert_eq!(
+            estimate(vec![1.0, 2.0], vec![0.0, 0.0]).relative_error(),
+            0.0
+        );
+        assert_eq!(
+            estimate(vec![0.0, 0.0], vec![0.0, 0.0]).relative_error(),
+            0.0
+        );
+        assert!(
+            estimate(vec![0.0, 0.0], vec![0.1, 0.0])
+                .relative_error()
+                .is_infinite()
+        );
+    }
 
     #[test]
     fn a_round_is_cut_to_what_fits_before_the_deadline() {
