@@ -95,6 +95,13 @@ class Explanation:
     coalitions_evaluated: int
     reasons: list[Reason]
     reasons_certain: bool
+    # The std errors' norm over the values' (0 for exact answers).
+    relative_error: float
+    # The probability that the listed reasons are the top ones.
+    reasons_set_probability: float
+    # With aim_at_reasons: what the boundary phase computed, and for whom.
+    boundary_evaluations: int
+    boundary_players: list[str]
 
     @staticmethod
     def from_message(m: Any) -> "Explanation":
@@ -112,6 +119,10 @@ class Explanation:
             reasons=[Reason(r.name, r.reason_code, r.statement, r.weight, r.in_list_probability)
                      for r in m.reasons],
             reasons_certain=m.reasons_certain,
+            relative_error=m.relative_error,
+            reasons_set_probability=m.reasons_set_probability,
+            boundary_evaluations=m.boundary_evaluations,
+            boundary_players=list(m.boundary_players),
         )
 
     def values(self) -> dict[str, float]:

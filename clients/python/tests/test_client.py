@@ -74,6 +74,28 @@ def test_explain_one_row_equals_the_closed_form(client):
     for got, expected in zip(answer.values().values(), closed_form(row)):
         assert math.isclose(got, expected, rel_tol=1e-12, abs_tol=1e-12)
     assert [r.name for r in answer.reasons] == ["income"] or not answer.reasons
+    assert answer.relative_error == 0.0 and answer.reasons_set_probability == 1.0, "an exact answer"
+
+
+def test_a_sampled_answer_aimed_at_its_reasons_reports_its_effort(client, tmp_path):
+    # The same features under a logistic link: probabilities are not
+    # additive, so permutation sampling has std errors.
+    spec = {
+        "model_id": "py-package-logistic", "link": "logistic",
+        "features": [{"name": "income", "reason_text": "Income is low"}, {"name": "debt"},
+                     {"name": "tenure", "reason_text": "Tenure is short"}],
+        "model": {"kind": "linear", "weights": WEIGHTS, "intercept": 0.1},
+        "background": BACKGROUND,
+    }
+    (tmp_path / "logistic.json").write_text(json.dumps(spec))
+    client.register_file(tmp_path / "logistic.json")
+    answer = client.explain("py-package-logistic", [4.0, 1.0, 3.0], estimator="permutation",
+                            target="probability", aim_at_reasons=True, max_evaluations=64, seed=3,
+                            tolerance=1e-300)
+    assert answer.estimator == "permutation"
+    assert answer.relative_error > 0.0
+    assert answer.boundary_evaluations <= answer.coalitions_evaluated <= 64
+    assert set(answer.boundary_players) <= {"income", "tenure"}, "debt has no statement"
 
 
 def test_a_data_frame_in_and_out(client):
