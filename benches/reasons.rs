@@ -85,7 +85,6 @@ fn measure(
         level: LEVEL,
         codes: entry.reason_codes().to_vec(),
         statements: entry.reason_statements().to_vec(),
-        seed: 0,
     });
     let mut row = Row {
         answers: 0,

@@ -430,7 +430,6 @@ fn aiming_at_the_boundary_separates_the_list_more_often_at_equal_evaluations() {
         level: 0.95,
         codes: pair.codes.clone(),
         statements: pair.statements.clone(),
-        seed: 0,
     });
     let trials = 300;
     let evaluations = 64;

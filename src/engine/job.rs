@@ -456,18 +456,7 @@ impl JobTemplate {
             plan_reason: self.plan_reason.clone(),
             predicted: self.predicted,
             minimum: self.minimum,
-            // The list's probabilities are drawn with the instance's seed,
-            // as its answer's reasons will be.
-            reasons_goal: self.reasons_goal.as_ref().map(|goal| {
-                if goal.seed == seed {
-                    goal.clone()
-                } else {
-                    Arc::new(Goal {
-                        seed,
-                        ..Goal::clone(goal)
-                    })
-                }
-            }),
+            reasons_goal: self.reasons_goal.clone(),
             prepared_at,
         })
     }

@@ -326,6 +326,20 @@ type Versions = BTreeMap<u64, Arc<Entry>>;
 /// applies the changes other replicas make.
 type Models = Arc<RwLock<BTreeMap<String, Versions>>>;
 
+/// Takes the `removed` versions of `model_id` out of the served models (and
+/// the id, once it has none left).
+fn stop_serving(models: &Models, model_id: &str, removed: &[u64]) {
+    let mut models = models.write().unwrap_or_else(PoisonError::into_inner);
+    if let Some(versions) = models.get_mut(model_id) {
+        for version in removed {
+            versions.remove(version);
+        }
+        if versions.is_empty() {
+            models.remove(model_id);
+        }
+    }
+}
+
 /// The registered models. Reads take a shared lock for a map lookup only;
 /// writes are serialised (by a mutex for the directory, by the database
 /// thread for PostgreSQL) and do their I/O without holding the map lock.
@@ -583,17 +597,7 @@ impl Registry {
         let last = last_versions.get(model_id).copied().unwrap_or(0);
         store.write_counter(model_id, last)?;
         let (removed, failure) = store.remove_records(model_id, &doomed);
-        {
-            let mut models = self.models.write().unwrap_or_else(PoisonError::into_inner);
-            if let Some(versions) = models.get_mut(model_id) {
-                for version in &removed {
-                    versions.remove(version);
-                }
-                if versions.is_empty() {
-                    models.remove(model_id);
-                }
-            }
-        }
+        stop_serving(&self.models, model_id, &removed);
         drop(last_versions);
         match failure {
             Some(error) => Err(error),

@@ -46,7 +46,9 @@ use tokio_postgres::config::{Host, SslMode};
 use tokio_postgres::{AsyncMessage, Client, Config, NoTls};
 
 use super::store::{self, Record};
-use super::{Entry, FORMAT_VERSION, LoadProblem, ModelInfo, Models, RegistryError, Result};
+use super::{
+    Entry, FORMAT_VERSION, LoadProblem, ModelInfo, Models, RegistryError, Result, stop_serving,
+};
 use crate::telemetry;
 
 /// The NOTIFY channel every replica LISTENs on. The payload says what
@@ -638,17 +640,7 @@ impl Worker {
                 version,
             });
         }
-        {
-            let mut models = self.models.write().unwrap_or_else(PoisonError::into_inner);
-            if let Some(versions) = models.get_mut(model_id) {
-                for version in &removed {
-                    versions.remove(version);
-                }
-                if versions.is_empty() {
-                    models.remove(model_id);
-                }
-            }
-        }
+        stop_serving(&self.models, model_id, &removed);
         self.refused
             .retain(|(id, version)| id != model_id || !removed.contains(version));
         set_registered_gauge(&self.models);

@@ -982,7 +982,6 @@ pub fn reasons_goal(entry: &Entry, request: &proto::ExplainRequest) -> Option<Ar
         level: terms.level,
         codes: entry.reason_codes().to_vec(),
         statements: entry.reason_statements().to_vec(),
-        seed: request.seed,
     }))
 }
 

@@ -38,8 +38,6 @@ pub struct Goal {
     pub level: f64,
     pub codes: Vec<String>,
     pub statements: Vec<String>,
-    /// Seeds the list's probabilities, as the answer's reasons will be.
-    pub seed: u64,
 }
 
 /// What the boundary phase did.
@@ -164,8 +162,9 @@ fn boundary_players(estimate: &Estimate, goal: &Goal) -> Vec<Vec<usize>> {
     near.into_iter().map(|(_, players)| players).collect()
 }
 
-/// Whether the listed set is separated at the goal's level.
-fn separated(estimate: &Estimate, goal: &Goal) -> bool {
+/// Whether the listed set is separated at the goal's level, its
+/// probability drawn with the answer's seed as the answer's reasons are.
+fn separated(estimate: &Estimate, goal: &Goal, seed: u64) -> bool {
     reasons::principal_reasons(
         &Attributions {
             values: &estimate.values,
@@ -176,7 +175,7 @@ fn separated(estimate: &Estimate, goal: &Goal) -> bool {
         goal.sign,
         goal.limit,
         goal.level,
-        goal.seed,
+        seed,
     )
     .certain
 }
@@ -206,7 +205,7 @@ pub fn refine(
     let before = game.evaluations();
     let mut asked = false;
     loop {
-        if separated(&estimate, goal) {
+        if separated(&estimate, goal, seed) {
             report.separated = true;
             break;
         }
