@@ -156,9 +156,10 @@ struct ExplainArgs {
     /// Principal reasons to list per row; 0 is 4.
     #[arg(long, default_value_t = 0)]
     max_reasons: u32,
-    /// Spend half of a sampled answer's budget on the players at the edge of the reasons list.
-    #[arg(long)]
-    aim_at_reasons: bool,
+    /// How a sampled answer spends its effort: aimed (half of it on the players at the edge
+    /// of the reasons list, stopping once the list is separated) or even.
+    #[arg(long, default_value = "aimed")]
+    reasons_effort: String,
 }
 
 /// Settings of `serve`. Each is taken from its flag, else its environment
@@ -463,7 +464,12 @@ fn explain_template(
         tolerance: args.tolerance,
         fixed_values: args.fixed_values.clone(),
         max_reasons: args.max_reasons,
-        aim_at_reasons: args.aim_at_reasons,
+        reasons_effort: choice(
+            "reasons-effort",
+            "REASONS_EFFORT",
+            &args.reasons_effort,
+            |s| proto::ReasonsEffort::from_str_name(s).map(|v| v as i32),
+        )?,
         request_id: "cli".into(),
         ..Default::default()
     })

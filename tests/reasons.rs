@@ -413,7 +413,7 @@ fn the_probability_of_the_listed_set_is_calibrated() {
     );
 }
 
-/// The boundary rule of `aim_at_reasons` against the sampler alone on the
+/// The boundary rule of aimed effort against the sampler alone on the
 /// close-pair game over 300 seeds, run to an equal cap of coalition values
 /// (no tolerance stop, no clock): aiming separates the top-4 set (set
 /// probability ≥ 0.95) in more answers, and the separated answers still
@@ -500,10 +500,11 @@ fn aiming_at_the_boundary_separates_the_list_more_often_at_equal_evaluations() {
     }
 }
 
-/// `aim_at_reasons` over gRPC: a sampled probability answer reports what
-/// its boundary phase spent and on whom, within the evaluations it
-/// reports; without the flag, or over a random removal (whose cached
-/// values would make the extra samples dependent), nothing is aimed.
+/// Aimed effort over gRPC: a sampled probability answer with reasons is
+/// aimed by default and reports what its boundary phase spent and on
+/// whom, within the evaluations it reports; with REASONS_EFFORT_EVEN, or
+/// over a random removal (whose cached values would make the extra samples
+/// dependent), nothing is aimed.
 #[tokio::test]
 async fn aiming_is_reported_over_grpc_and_only_where_it_applies() {
     let dir = tempfile::tempdir().unwrap();
@@ -514,14 +515,14 @@ async fn aiming_is_reported_over_grpc_and_only_where_it_applies() {
         .await
         .unwrap();
     let mut client = server.attributions_client();
-    let request = |aim: bool, removal: proto::Removal| proto::ExplainRequest {
+    let request = |effort: proto::ReasonsEffort, removal: proto::Removal| proto::ExplainRequest {
         estimator: proto::Estimator::Permutation as i32,
         max_evaluations: 64,
         tolerance: 1e-300,
         budget_ms: 30_000,
         seed: 5,
         removal: removal as i32,
-        aim_at_reasons: aim,
+        reasons_effort: effort as i32,
         ..explain("aimed", proto::Target::Probability)
     };
     let mut aimed_any = false;
@@ -529,7 +530,7 @@ async fn aiming_is_reported_over_grpc_and_only_where_it_applies() {
         let answer = client
             .explain(proto::ExplainRequest {
                 seed,
-                ..request(true, proto::Removal::Marginal)
+                ..request(proto::ReasonsEffort::Unspecified, proto::Removal::Marginal)
             })
             .await
             .unwrap()
@@ -552,16 +553,16 @@ async fn aiming_is_reported_over_grpc_and_only_where_it_applies() {
         aimed_any |= answer.boundary_evaluations > 0;
     }
     assert!(aimed_any, "some of 20 seeds reach the boundary phase");
-    for (aim, removal) in [
-        (false, proto::Removal::Marginal),
-        (true, proto::Removal::Independent),
+    for (effort, removal) in [
+        (proto::ReasonsEffort::Even, proto::Removal::Marginal),
+        (proto::ReasonsEffort::Aimed, proto::Removal::Independent),
     ] {
         let answer = client
-            .explain(request(aim, removal))
+            .explain(request(effort, removal))
             .await
             .unwrap()
             .into_inner();
-        assert_eq!(answer.boundary_evaluations, 0, "{aim} {removal:?}");
+        assert_eq!(answer.boundary_evaluations, 0, "{effort:?} {removal:?}");
         assert!(answer.boundary_players.is_empty());
     }
     server.stop().await;

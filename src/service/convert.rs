@@ -717,6 +717,7 @@ pub fn explain_request(request: &proto::ExplainRequest, budget: Duration) -> Res
         ));
     }
     known::<proto::Favourable>("favourable", request.favourable)?;
+    known::<proto::ReasonsEffort>("reasons_effort", request.reasons_effort)?;
     space_from("decision_space", request.decision_space)?;
     let level = request.reasons_level;
     if !(level == 0.0 || (level > 0.0 && level < 1.0)) {
@@ -969,10 +970,14 @@ fn reason_terms(
     })
 }
 
-/// What a request that aims at its reasons asks the engine to separate;
-/// `None` when it does not aim or lists no reasons.
+/// What a request's sampled answer is aimed at separating: its listed
+/// reasons, unless the request asks for even effort or lists none (no
+/// player has a statement, or its target is not in the decision's space).
 pub fn reasons_goal(entry: &Entry, request: &proto::ExplainRequest) -> Option<Arc<Goal>> {
-    if !request.aim_at_reasons {
+    if request.reasons_effort == proto::ReasonsEffort::Even as i32 {
+        return None;
+    }
+    if entry.reason_statements().iter().all(String::is_empty) {
         return None;
     }
     let terms = reason_terms(entry, request).ok()?;

@@ -99,7 +99,7 @@ class Explanation:
     relative_error: float
     # The probability that the listed reasons are the top ones.
     reasons_set_probability: float
-    # With aim_at_reasons: what the boundary phase computed, and for whom.
+    # When the effort was aimed: what the boundary phase computed, and for whom.
     boundary_evaluations: int
     boundary_players: list[str]
 
@@ -159,6 +159,7 @@ def _explain_request(model_id: str, row: Sequence[float], options: dict[str, Any
         target=_enum(pb.Target, "TARGET", options.pop("target", None)),
         summary=_enum(pb.Summary, "SUMMARY", options.pop("summary", None)),
         estimator=_enum(pb.Estimator, "ESTIMATOR", options.pop("estimator", None)),
+        reasons_effort=_enum(pb.ReasonsEffort, "REASONS_EFFORT", options.pop("reasons_effort", None)),
     )
     for name, value in options.items():
         if name == "fixed_values":

@@ -90,7 +90,7 @@ def test_a_sampled_answer_aimed_at_its_reasons_reports_its_effort(client, tmp_pa
     (tmp_path / "logistic.json").write_text(json.dumps(spec))
     client.register_file(tmp_path / "logistic.json")
     answer = client.explain("py-package-logistic", [4.0, 1.0, 3.0], estimator="permutation",
-                            target="probability", aim_at_reasons=True, max_evaluations=64, seed=3,
+                            target="probability", reasons_effort="aimed", max_evaluations=64, seed=3,
                             tolerance=1e-300)
     assert answer.estimator == "permutation"
     assert answer.relative_error > 0.0
