@@ -1,10 +1,12 @@
 //! Reasons a notice can rely on, at a 20 ms budget: for 1,000 synthetic
-//! applicants each, AUTO with reasons, with and without `aim_at_reasons`,
+//! applicants each, AUTO with reasons, with effort aimed at them and even,
 //! the share of answers whose top-4 set is the exact top-4 set, the share
 //! with `reasons_certain`, how often a certain list is the exact one, and
 //! the mean time. The demo's reliability score (8 players, 100 trees,
 //! higher is favourable, decided in probability) has an exact reference by
-//! enumeration (2^8 coalitions); the 30-feature boosted risk score (300
+//! enumeration (2^8 coalitions), and AUTO answers it exactly too (from the
+//! tree walk's coalition table), so it is also measured with a sampler
+//! asked for, where aiming shows; the 30-feature boosted risk score (300
 //! trees, 1,000 background rows, higher is adverse) is decided on its
 //! margin, where AUTO's answer is the exact tree algorithm, and in
 //! probability, where it is sampled and 2^30 coalitions of 1,000 rows leave
@@ -77,6 +79,7 @@ fn measure(
     sign: f64,
     applicants: &Array2<f64>,
     references: Option<&[Vec<usize>]>,
+    estimator: Option<EstimatorKind>,
     aim: bool,
 ) -> Row {
     let goal = Arc::new(Goal {
@@ -101,6 +104,7 @@ fn measure(
         request.target = target.clone();
         request.budget = BUDGET;
         request.seed = k as u64;
+        request.estimator = estimator;
         request.reasons_goal = aim.then(|| goal.clone());
         let started = Instant::now();
         let answer = prepare(entry.prepared(), request)
@@ -259,19 +263,28 @@ fn main() {
     );
     println!();
     println!(
-        "| model and decision space | aim_at_reasons | answers | top-4 set exact | reasons_certain | certain lists exact | mean ms | estimators |"
+        "| model and decision space | effort aimed | answers | top-4 set exact | reasons_certain | certain lists exact | mean ms | estimators |"
     );
     println!("|---|---|---|---|---|---|---|---|");
-    for aim in [false, true] {
-        let row = measure(
-            &demo,
-            Target::Probability,
-            -1.0,
-            &demo_applicants,
-            Some(&demo_exact),
-            aim,
-        );
-        print("demo reliability (8 players), probability", aim, &row);
+    for (estimator, name) in [
+        (None, "demo reliability (8 players), probability"),
+        (
+            Some(EstimatorKind::LeverageRegression),
+            "demo reliability, probability, LEVERAGE_REGRESSION asked for",
+        ),
+    ] {
+        for aim in [false, true] {
+            let row = measure(
+                &demo,
+                Target::Probability,
+                -1.0,
+                &demo_applicants,
+                Some(&demo_exact),
+                estimator,
+                aim,
+            );
+            print(name, aim, &row);
+        }
     }
     for aim in [false, true] {
         let row = measure(
@@ -280,12 +293,21 @@ fn main() {
             1.0,
             &risk_applicants,
             Some(&risk_margin_exact),
+            None,
             aim,
         );
         print("30-feature risk, margin", aim, &row);
     }
     for aim in [false, true] {
-        let row = measure(&risk, Target::Probability, 1.0, &risk_applicants, None, aim);
+        let row = measure(
+            &risk,
+            Target::Probability,
+            1.0,
+            &risk_applicants,
+            None,
+            None,
+            aim,
+        );
         print("30-feature risk, probability", aim, &row);
     }
 }

@@ -629,3 +629,160 @@ fn prepared_tree_models_answer_from_the_compiled_form() {
         }
     }
 }
+
+/// The tree walk's coalition table (all 2^p values of a game at once, for
+/// targets the exact tree algorithm does not take) equals evaluating every
+/// hybrid row — the marginal or fixed game by its definition — to 1e-12,
+/// for the probability, a loss and the raw output, with groups and missing
+/// values; and through the front door, an EXACT probability answer taken
+/// from it equals the textbook Shapley value of those brute-force values.
+#[test]
+fn the_tree_walk_table_equals_every_hybrid_row_evaluated() {
+    use std::sync::Arc;
+    use std::time::{Duration, Instant};
+
+    use apportion::engine::estimate::EstimatorKind;
+    use apportion::engine::estimate::tree_table::TreeTable;
+    use apportion::engine::target::loss;
+    use apportion::engine::{Coalition, Game, PreparedModel, Request, Stopping, Target, prepare};
+
+    for seed in 0..6 {
+        let mut rng = ChaCha8Rng::seed_from_u64(100 + seed);
+        let model = random_ensemble(&mut rng);
+        let mut instance = random_row(&mut rng, 0.2);
+        instance[seed as usize % FEATURES] = f64::NAN;
+        let marginal = random_references(&mut rng, 9);
+        let fixed = random_references(&mut rng, 1);
+        for players in [Players::singletons(FEATURES), grouped_players()] {
+            let p = players.len();
+            for references in [&marginal, &fixed] {
+                let mut outputs = vec![0.0; references.nrows()];
+                // Per coalition, the model's raw outputs at every hybrid row.
+                let hybrid: Vec<Vec<f64>> = (0..1usize << p)
+                    .map(|coalition| {
+                        let mut rows = references.clone();
+                        for mut row in rows.rows_mut() {
+                            for (feature, slot) in row.iter_mut().enumerate() {
+                                if coalition >> players.player_of(feature) & 1 == 1 {
+                                    *slot = instance[feature];
+                                }
+                            }
+                        }
+                        model.predict(rows.view(), &mut outputs);
+                        outputs.clone()
+                    })
+                    .collect();
+                let mean = |xs: &[f64], f: &dyn Fn(f64) -> f64| {
+                    xs.iter().map(|x| f(*x)).sum::<f64>() / xs.len() as f64
+                };
+                let logistic = Link::Logistic;
+                for (target, link, expected) in [
+                    (
+                        Target::Output,
+                        Link::Identity,
+                        hybrid.iter().map(|o| mean(o, &|x| x)).collect::<Vec<_>>(),
+                    ),
+                    (
+                        Target::Probability,
+                        Link::Logistic,
+                        hybrid
+                            .iter()
+                            .map(|o| mean(o, &|x| logistic.apply(x)))
+                            .collect(),
+                    ),
+                    (
+                        Target::Loss { label: 1.0 },
+                        Link::Logistic,
+                        hybrid
+                            .iter()
+                            .map(|o| loss(logistic, 1.0, mean(o, &|x| logistic.apply(x))))
+                            .collect(),
+                    ),
+                ] {
+                    let table = TreeTable::build(
+                        &model,
+                        link,
+                        &players,
+                        &instance,
+                        references.view(),
+                        &target,
+                        &Stopping::unbounded(),
+                    )
+                    .expect("a table");
+                    let coalitions: Vec<Coalition> =
+                        (0..1u128 << p).map(Coalition::from_bits).collect();
+                    let mut got = vec![0.0; coalitions.len()];
+                    table.values(&coalitions, &mut got);
+                    let what = format!(
+                        "seed {seed}, {p} players, {} rows, {}",
+                        references.nrows(),
+                        target.name()
+                    );
+                    for (coalition, (g, e)) in got.iter().zip(&expected).enumerate() {
+                        assert!(
+                            (g - e).abs() <= 1e-12 * e.abs().max(1.0),
+                            "{what}: coalition {coalition:b} got {g}, hybrid rows {e}"
+                        );
+                    }
+                }
+            }
+        }
+        // Through the front door, as a logistic model's probability.
+        let logistic = TreeEnsemble::try_new(
+            model.trees().to_vec(),
+            model.base_score(),
+            Link::Logistic,
+            FEATURES,
+        )
+        .expect("valid ensemble");
+        let players = grouped_players();
+        let prepared = Arc::new(
+            PreparedModel::try_new(
+                Arc::new(logistic.clone()),
+                players.clone(),
+                marginal.clone(),
+                1e4,
+            )
+            .expect("prepares"),
+        );
+        let mut request = Request::new(instance.clone());
+        request.target = Target::Probability;
+        request.estimator = Some(EstimatorKind::Exact);
+        request.budget = Duration::from_secs(60);
+        let answer = prepare(&prepared, request)
+            .expect("valid request")
+            .run(Instant::now() + Duration::from_secs(60))
+            .expect("an explanation");
+        assert_eq!(
+            answer.model_rows_evaluated,
+            marginal.nrows() as u64,
+            "a table at 10 µs a model row: walked once per background row"
+        );
+        let mut outputs = vec![0.0; marginal.nrows()];
+        let values: Vec<f64> = (0..1usize << players.len())
+            .map(|coalition| {
+                let mut rows = marginal.clone();
+                for mut row in rows.rows_mut() {
+                    for (feature, slot) in row.iter_mut().enumerate() {
+                        if coalition >> players.player_of(feature) & 1 == 1 {
+                            *slot = instance[feature];
+                        }
+                    }
+                }
+                logistic.predict(rows.view(), &mut outputs);
+                outputs
+                    .iter()
+                    .map(|o| Link::Logistic.apply(*o))
+                    .sum::<f64>()
+                    / outputs.len() as f64
+            })
+            .collect();
+        let expected = brute_shapley(&values, players.len());
+        assert_close(
+            &answer.estimate.values,
+            &expected,
+            1e-12,
+            "EXACT probability from the table",
+        );
+    }
+}

@@ -13,6 +13,7 @@ use super::cancel::CancelFlag;
 use super::coalition::Coalition;
 use super::error::{EngineError, ErrorKind, Result};
 use super::estimate::boundary::{Boundary, Goal};
+use super::estimate::tree_table::TreeTable;
 use super::estimate::{self, Estimate, EstimatorKind, Stopping};
 use super::game::{CachedGame, Game, ModelGame};
 use super::model::{Link, Structure};
@@ -157,8 +158,10 @@ enum Work {
     /// The linear closed form against the reference mean or fixed values.
     LinearExact,
     /// Every coalition the summary needs; the tolerance (0: the default)
-    /// decides whether removal noise leaves the answer unconverged.
-    Enumerate { tolerance: f64 },
+    /// decides whether removal noise leaves the answer unconverged. With
+    /// `tree_walk`, the values come from one walk of the trees per
+    /// reference row (see [`estimate::tree_table`]), not from model rows.
+    Enumerate { tolerance: f64, tree_walk: bool },
     /// An anytime sampler stopping at the tolerance (0: the default, see
     /// [`estimate::default_tolerance`]), the evaluation cap or the deadline.
     Sample {
@@ -328,6 +331,24 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         Structure::Trees(_) => ModelShape::Trees,
         Structure::Opaque => ModelShape::Opaque,
     };
+    // Every coalition value at once by walking the trees, where the game
+    // is one instance's under a removal to background or fixed rows and
+    // the walk is cheaper than the rows enumeration would fill.
+    let fixed = matches!(removal, ValidRemoval::Fixed(_));
+    let table_cost_ns = model
+        .tree_table_cost_ns(fixed)
+        .filter(|_| {
+            (fixed || removal == ValidRemoval::Marginal)
+                && matches!(
+                    request.target,
+                    Target::Output | Target::Probability | Target::Loss { .. }
+                )
+        })
+        .filter(|table| {
+            let rows = plan::enumerated(request.summary, model.players().len()) as f64
+                * rows_per_coalition as f64;
+            *table < rows * model.coalition_row_cost_ns()
+        });
     let chosen = plan::plan(&PlanInput {
         players: model.players().len(),
         rows_per_coalition,
@@ -338,7 +359,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         requested: request.estimator,
         budget: request.budget,
         max_evaluations: request.max_evaluations,
-        row_cost_ns: model.row_cost_ns(),
+        row_cost_ns: model.coalition_row_cost_ns(),
         exact_cost_ns: model.exact_cost_ns(matches!(removal, ValidRemoval::Fixed(_))),
         enumeration_cap: request.enumeration_cap,
         row_sampling: removal == ValidRemoval::Marginal
@@ -349,12 +370,14 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
             _ => None,
         },
         background_rows,
+        table_cost_ns,
     })?;
     let work = match chosen.estimator {
         EstimatorKind::TreeExact => Work::TreeExact,
         EstimatorKind::LinearExact => Work::LinearExact,
         EstimatorKind::Exact => Work::Enumerate {
             tolerance: request.tolerance,
+            tree_walk: table_cost_ns.is_some(),
         },
         EstimatorKind::TreeRowSample => Work::TreeRowSample {
             max_rows: chosen.max_evaluations,
@@ -362,7 +385,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         },
         EstimatorKind::RowPermutation => Work::RowSample {
             max_rows: chosen.max_evaluations,
-            round_rows: round_rows(request.budget, model.row_cost_ns()),
+            round_rows: round_rows(request.budget, model.coalition_row_cost_ns()),
             tolerance: request.tolerance,
         },
         sampled => Work::Sample {
@@ -500,6 +523,7 @@ impl Job {
             cancel,
         };
         stopping.check_cancelled()?;
+        let started = Instant::now();
         let model = self.model.as_ref();
         let players = model.players();
         let mut boundary = None;
@@ -612,6 +636,16 @@ impl Job {
                 (estimate, counts)
             }
         };
+        if matches!(
+            self.work,
+            Work::Enumerate {
+                tree_walk: false,
+                ..
+            } | Work::Sample { .. }
+                | Work::RowSample { .. }
+        ) {
+            model.observe_coalition_run(started.elapsed(), counts.model_rows);
+        }
         let finite = estimate.value_full.is_finite()
             && estimate.value_empty.is_finite()
             && estimate.values.iter().all(|v| v.is_finite());
@@ -638,6 +672,36 @@ impl Job {
     fn run_on_game(&self, mut stopping: Stopping) -> Result<(Estimate, Counts, Option<Boundary>)> {
         let model = self.model.as_ref();
         let background = model.background();
+        if let (
+            Work::Enumerate {
+                tree_walk: true, ..
+            },
+            Structure::Trees(ensemble),
+        ) = (&self.work, model.structure())
+        {
+            let references = match &self.removal {
+                ValidRemoval::Fixed(values) => ArrayView2::from_shape((1, values.len()), values)
+                    .map_err(|_| self.not_planned("one reference row"))?,
+                _ => background,
+            };
+            let table = TreeTable::build(
+                ensemble,
+                model.model().link(),
+                model.players(),
+                &self.instance,
+                references,
+                &self.target,
+                &stopping,
+            )?;
+            let cached = CachedGame::new(&table);
+            let estimate = estimate::exact::explain_within(&cached, self.summary, &stopping)?;
+            let counts = Counts {
+                coalitions: cached.evaluations(),
+                model_rows: table.model_rows(),
+                cache_hits: cached.cache_hits(),
+            };
+            return Ok((estimate, counts, None));
+        }
         let removal: Box<dyn Removal + '_> =
             match &self.removal {
                 ValidRemoval::Fixed(values) => {
@@ -734,7 +798,7 @@ impl Job {
     /// game's ends once they are known).
     fn tolerance(&self) -> f64 {
         match self.work {
-            Work::Enumerate { tolerance }
+            Work::Enumerate { tolerance, .. }
             | Work::Sample { tolerance, .. }
             | Work::RowSample { tolerance, .. }
             | Work::TreeRowSample { tolerance, .. } => tolerance,

@@ -18,6 +18,12 @@ use super::summary::{Kernel, Summary};
 /// Default cap on players for exact enumeration (2^20 coalitions).
 pub const DEFAULT_ENUMERATION_CAP: usize = 20;
 
+/// Share of the budget an exact enumeration may be predicted to take for
+/// AUTO to choose it: it cannot stop early with what it has, a predicted
+/// time is a mean and not a bound, and a sampler that stops on time is
+/// there when it does not fit (common practice, no source).
+const EXACT_SHARE: f64 = 0.75;
+
 /// What the model lets the planner do beyond evaluating it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ModelShape {
@@ -58,6 +64,10 @@ pub struct PlanInput {
     pub tree_row_cost_ns: Option<f64>,
     /// Background rows the marginal game averages over.
     pub background_rows: usize,
+    /// Predicted time of every coalition value by the tree walk (see
+    /// [`super::estimate::tree_table`]), in nanoseconds, when exact
+    /// enumeration takes its values from it (it is cheaper than the rows).
+    pub table_cost_ns: Option<f64>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -133,20 +143,17 @@ impl PlanInput {
             EstimatorKind::TreeExact | EstimatorKind::LinearExact => {
                 self.exact_cost_ns.unwrap_or(0.0)
             }
+            EstimatorKind::Exact if self.table_cost_ns.is_some() => {
+                self.table_cost_ns.unwrap_or(0.0)
+            }
             _ => evaluations as f64 * self.coalition_cost_ns(),
         };
-        Duration::from_secs_f64(nanoseconds.max(0.0) / 1e9)
+        Duration::try_from_secs_f64(nanoseconds.max(0.0) / 1e9).unwrap_or(Duration::MAX)
     }
 
     /// Coalitions exact enumeration of the summary evaluates.
     fn enumerated(&self) -> u64 {
-        let p = self.players as u64;
-        match self.summary {
-            Summary::LeaveOneOut | Summary::IncludeOne => p + 2,
-            Summary::Selection { .. } => p * (p + 1) / 2 + 2,
-            _ if p < 64 => 1 << p,
-            _ => u64::MAX,
-        }
+        enumerated(self.summary, self.players)
     }
 
     fn model_specific(&self) -> Option<(EstimatorKind, &'static str)> {
@@ -518,13 +525,26 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
 
     let all = if p < 64 { 1u64 << p } else { u64::MAX };
     let cap = input.enumeration_cap.min(ENUMERATION_LIMIT);
-    if p <= cap && all <= input.max_evaluations && all <= affordable {
-        let predicted = input.predicted(EstimatorKind::Exact, all);
-        passed_over.push(format!(
-            "all 2^{p} coalitions × {} rows ≈ {:.1} ms fit the budget, so the answer is exact",
-            input.rows_per_coalition,
-            milliseconds(predicted)
-        ));
+    let predicted_all = input.predicted(EstimatorKind::Exact, all);
+    if p <= cap
+        && all <= input.max_evaluations
+        && predicted_all.as_secs_f64() <= EXACT_SHARE * input.budget.as_secs_f64()
+    {
+        let predicted = predicted_all;
+        passed_over.push(if input.table_cost_ns.is_some() {
+            format!(
+                "all 2^{p} coalition values, by walking the trees with each of the {} reference \
+                 rows, ≈ {:.1} ms fit the budget, so the answer is exact",
+                input.rows_per_coalition,
+                milliseconds(predicted)
+            )
+        } else {
+            format!(
+                "all 2^{p} coalitions × {} rows ≈ {:.1} ms fit the budget, so the answer is exact",
+                input.rows_per_coalition,
+                milliseconds(predicted)
+            )
+        });
         return Ok(Plan {
             estimator: EstimatorKind::Exact,
             max_evaluations: all,
@@ -542,8 +562,11 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
         )
     } else {
         format!(
-            "2^{p} coalitions × {} rows would take longer than the {budget_ms:.3} ms budget",
-            input.rows_per_coalition
+            "2^{p} coalitions × {} rows ≈ {:.1} ms would take more than {:.0}% of the \
+             {budget_ms:.3} ms budget",
+            input.rows_per_coalition,
+            milliseconds(predicted_all),
+            EXACT_SHARE * 100.0
         )
     });
 
@@ -626,6 +649,17 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
     ))
 }
 
+/// Coalitions exact enumeration of `summary` over `players` evaluates.
+pub fn enumerated(summary: Summary, players: usize) -> u64 {
+    let p = players as u64;
+    match summary {
+        Summary::LeaveOneOut | Summary::IncludeOne => p + 2,
+        Summary::Selection { .. } => p * (p + 1) / 2 + 2,
+        _ if p < 64 => 1 << p,
+        _ => u64::MAX,
+    }
+}
+
 /// The refusal when even the smallest estimate AUTO could make does not
 /// fit: at once, saying what budget would do.
 fn too_small(input: &PlanInput, predicted: Duration, smallest: &str) -> EngineError {
@@ -664,6 +698,7 @@ mod tests {
             row_sampling: true,
             tree_row_cost_ns: None,
             background_rows: 100,
+            table_cost_ns: None,
         }
     }
 
@@ -730,8 +765,10 @@ mod tests {
                             (ModelShape::Trees, Some(5e6)),
                             (ModelShape::Linear, Some(row_cost_ns)),
                         ] {
-                            for summary in
+                            for (summary, table_cost_ns) in
                                 [Summary::Shapley, Summary::Banzhaf, Summary::LeaveOneOut]
+                                    .into_iter()
+                                    .flat_map(|s| [(s, None), (s, Some(1e6)), (s, Some(1e9))])
                             {
                                 let case = PlanInput {
                                     players,
@@ -744,6 +781,7 @@ mod tests {
                                     tree_row_cost_ns: (shape == ModelShape::Trees)
                                         .then_some(row_cost_ns * 20.0),
                                     background_rows: rows,
+                                    table_cost_ns,
                                     ..input(players)
                                 };
                                 match plan(&case) {
@@ -792,6 +830,30 @@ mod tests {
         assert!(error.message.contains("1.190 ms"), "{}", error.message);
         assert!(error.message.contains("at least 2 ms"), "{}", error.message);
         assert!(plan(&expensive_coalitions(2)).is_ok());
+    }
+
+    #[test]
+    fn a_tree_walk_cheaper_than_the_rows_makes_the_enumeration_exact() {
+        // 2^8 coalitions × 100 rows × 10 µs = 256 ms, over the 100 ms budget.
+        let mut trees = input(8);
+        trees.shape = ModelShape::Trees;
+        trees.output_target = false;
+        trees.row_cost_ns = 10_000.0;
+        assert_ne!(plan(&trees).unwrap().estimator, EstimatorKind::Exact);
+        // The walk's 5 ms fits.
+        trees.table_cost_ns = Some(5e6);
+        let chosen = plan(&trees).unwrap();
+        assert_eq!(chosen.estimator, EstimatorKind::Exact);
+        assert_eq!(chosen.predicted, Duration::from_millis(5));
+        assert!(
+            chosen.reason.contains("walking the trees"),
+            "{}",
+            chosen.reason
+        );
+        // 80 ms is over three quarters of the budget: an enumeration cannot
+        // stop early, so a sampler takes it.
+        trees.table_cost_ns = Some(80e6);
+        assert_ne!(plan(&trees).unwrap().estimator, EstimatorKind::Exact);
     }
 
     #[test]

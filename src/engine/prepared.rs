@@ -4,17 +4,19 @@
 //! background — computed once, at registration and on load. Requests borrow
 //! it; nothing here is recomputed or copied per request.
 
-use std::sync::{Arc, OnceLock};
+use std::sync::{Arc, Mutex, OnceLock};
 use std::time::{Duration, Instant};
 
 use ndarray::{Array2, ArrayView2};
 
 use super::error::{EngineError, ErrorKind, Result};
 use super::estimate::tree::{self, CompiledTrees};
-use super::model::{Model, Structure};
+use super::estimate::tree_table;
+use super::model::{Link, Model, Structure};
 use super::players::Players;
 use super::removal::{self, GaussianFit};
 use super::summary::Summary;
+use super::target::Target;
 
 /// Background rows the exact tree algorithm is timed on at preparation.
 const TREE_TIMING_ROWS: usize = 16;
@@ -28,8 +30,66 @@ pub const TREE_SUMMARY_LIMIT_BYTES: usize = 256 << 20;
 /// request that needs it, then kept.
 const EAGER_GAUSSIAN_WORK: usize = 100_000_000;
 
-/// A model ready to explain. Shared as `Arc<PreparedModel>`; it never
-/// changes after preparation.
+/// Runs of a model's coalition work the planner waits for before it
+/// prices rows at their learnt cost instead of the registered one.
+const LEARNT_AFTER_RUNS: u64 = 3;
+/// Fewest model rows a run must evaluate to teach the row cost: below
+/// that, a run's fixed costs (planning, the cache, the estimator's
+/// arithmetic) would pass for the rows' (common practice, no source).
+const LEARNING_ROWS: u64 = 1024;
+/// Weight of the newest run in the learnt row cost (an exponentially
+/// weighted mean over the last ten or so runs; common practice, no
+/// source).
+const LEARNING_WEIGHT: f64 = 0.2;
+
+/// What one model row costs inside the engine's coalition work (rows
+/// filled by the removal, predicted, averaged, and the estimator's own
+/// arithmetic spread over them), learnt from this model's runs; the
+/// batched prediction timed at registration prices rows until enough runs
+/// have been seen. Learnt under the server's real load, so when the cores
+/// are shared the planner sees rows cost more, and plans less.
+#[derive(Debug)]
+struct LearntRowCost {
+    registered: f64,
+    /// (exponentially weighted ns per row, runs seen).
+    learnt: Mutex<(f64, u64)>,
+}
+
+impl LearntRowCost {
+    fn new(registered: f64) -> LearntRowCost {
+        LearntRowCost {
+            registered,
+            learnt: Mutex::new((0.0, 0)),
+        }
+    }
+
+    fn get(&self) -> f64 {
+        let (learnt, runs) = *self.learnt.lock().unwrap_or_else(|e| e.into_inner());
+        if runs >= LEARNT_AFTER_RUNS {
+            learnt
+        } else {
+            self.registered
+        }
+    }
+
+    fn observe(&self, elapsed: Duration, rows: u64) {
+        if rows < LEARNING_ROWS {
+            return;
+        }
+        let per_row = elapsed.as_nanos() as f64 / rows as f64;
+        let mut learnt = self.learnt.lock().unwrap_or_else(|e| e.into_inner());
+        learnt.0 = if learnt.1 == 0 {
+            per_row
+        } else {
+            LEARNING_WEIGHT * per_row + (1.0 - LEARNING_WEIGHT) * learnt.0
+        };
+        learnt.1 += 1;
+    }
+}
+
+/// A model ready to explain. Shared as `Arc<PreparedModel>`; what it
+/// derives never changes after preparation (only the learnt row cost
+/// moves, with the model's runs).
 pub struct PreparedModel {
     model: Arc<dyn Model>,
     players: Players,
@@ -37,6 +97,8 @@ pub struct PreparedModel {
     background: Array2<f64>,
     /// Measured time of one model row in a batched prediction, in ns.
     row_cost_ns: f64,
+    /// The planner's price of a row of coalition work.
+    coalition_row_cost: LearntRowCost,
     /// Column means, the reference of FIXED removal without values and of
     /// the linear closed form; refused when the background has missing
     /// values.
@@ -52,6 +114,10 @@ pub struct PreparedModel {
     /// Measured time of the exact tree algorithm per reference row over
     /// the whole ensemble (FIXED removal), in ns; 0 for other models.
     tree_reference_cost_ns: f64,
+    /// Measured time of the tree walk's coalition table per reference
+    /// row, in ns; `None` for other models and for more players than a
+    /// table takes.
+    tree_table_cost_ns: Option<f64>,
     /// How long preparation took.
     preparation: Duration,
 }
@@ -121,11 +187,13 @@ impl PreparedModel {
             players,
             background,
             row_cost_ns,
+            coalition_row_cost: LearntRowCost::new(row_cost_ns),
             background_mean,
             neighbor_scales,
             gaussian: OnceLock::new(),
             compiled_trees: None,
             tree_reference_cost_ns: 0.0,
+            tree_table_cost_ns: None,
             preparation: Duration::ZERO,
         };
         if let Structure::Trees(ensemble) = prepared.structure() {
@@ -138,6 +206,7 @@ impl PreparedModel {
             prepared.compiled_trees = Some(compiled);
         }
         prepared.tree_reference_cost_ns = prepared.measure_tree_reference_cost();
+        prepared.tree_table_cost_ns = prepared.measure_tree_table_cost();
         let (rows, features) = prepared.background.dim();
         if rows.saturating_mul(features).saturating_mul(features) <= EAGER_GAUSSIAN_WORK {
             // Whether it fits or not, the outcome is kept for the requests.
@@ -163,8 +232,22 @@ impl PreparedModel {
         self.background.view()
     }
 
+    /// The batched prediction's time per row, measured at registration.
     pub fn row_cost_ns(&self) -> f64 {
         self.row_cost_ns
+    }
+
+    /// The time per model row of coalition work the planner prices: learnt
+    /// from this model's runs once there are enough of them, the
+    /// registered [`PreparedModel::row_cost_ns`] before.
+    pub fn coalition_row_cost_ns(&self) -> f64 {
+        self.coalition_row_cost.get()
+    }
+
+    /// Teaches the learnt row cost one run's computing time over the model
+    /// rows it evaluated (runs too small to say are ignored).
+    pub fn observe_coalition_run(&self, elapsed: Duration, rows: u64) {
+        self.coalition_row_cost.observe(elapsed, rows);
     }
 
     pub fn structure(&self) -> Structure<'_> {
@@ -211,6 +294,41 @@ impl PreparedModel {
             (Structure::Trees(_), _) => Some(self.tree_reference_cost_ns),
             (Structure::Opaque, _) => None,
         }
+    }
+
+    /// Predicted time of every coalition value by the tree walk, in ns,
+    /// under marginal removal over the whole background (`fixed` false)
+    /// or fixed removal to one row; `None` when the model has no table.
+    pub fn tree_table_cost_ns(&self, fixed: bool) -> Option<f64> {
+        let rows = if fixed { 1 } else { self.background.nrows() };
+        self.tree_table_cost_ns.map(|per_row| per_row * rows as f64)
+    }
+
+    /// Times the coalition table of the first background row's probability
+    /// against up to [`TREE_TIMING_ROWS`] background rows, per reference
+    /// row.
+    fn measure_tree_table_cost(&self) -> Option<f64> {
+        let Structure::Trees(ensemble) = self.structure() else {
+            return None;
+        };
+        if self.players.len() > tree_table::TABLE_PLAYER_LIMIT {
+            return None;
+        }
+        let rows = self.background.nrows().min(TREE_TIMING_ROWS);
+        let references = self.background.slice(ndarray::s![..rows, ..]);
+        let instance = self.background.row(0).to_vec();
+        let started = Instant::now();
+        tree_table::TreeTable::build(
+            ensemble,
+            Link::Logistic,
+            &self.players,
+            &instance,
+            references,
+            &Target::Probability,
+            &super::estimate::Stopping::unbounded(),
+        )
+        .ok()?;
+        Some(started.elapsed().as_nanos() as f64 / rows as f64)
     }
 
     /// Times the exact tree algorithm for the first background row against

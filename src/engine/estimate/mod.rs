@@ -21,6 +21,7 @@ pub mod regression;
 pub mod row_permutation;
 mod sampling;
 pub mod tree;
+pub mod tree_table;
 
 use std::time::Instant;
 
