@@ -142,7 +142,10 @@ impl AttributionsService {
             // runs on the compute threads side by side, not one after
             // another where the call arrived.
             let work = move || {
-                chunk
+                // OK items are counted once per chunk (a counter's lookup
+                // costs about as much as a small answer's conversion).
+                let mut answered = 0u64;
+                let items = chunk
                     .into_iter()
                     .map(|(index, item)| {
                         let label = if labels_per_instance {
@@ -178,9 +181,16 @@ impl AttributionsService {
                                 explanation
                             })
                             .map_err(|error| unless_stopping(&shared, error));
-                        self::item(request_id, index as u64, result, "ExplainBatch")
+                        if result.is_ok() {
+                            answered += 1;
+                            convert::outcome(request_id, index as u64, result)
+                        } else {
+                            self::item(request_id, index as u64, result, "ExplainBatch")
+                        }
                     })
-                    .collect::<Vec<_>>()
+                    .collect::<Vec<_>>();
+                count_answered("ExplainBatch", answered);
+                items
             };
             chunks.push((
                 indices,
@@ -342,6 +352,14 @@ fn item(
     let outcome = convert::outcome(request_id, index, result);
     count_item(rpc, &outcome);
     outcome
+}
+
+/// Counts `answered` OK items of `rpc` at once.
+fn count_answered(rpc: &'static str, answered: u64) {
+    if answered > 0 {
+        metrics::counter!(telemetry::ITEMS, "rpc" => rpc, "code" => code_label(tonic::Code::Ok))
+            .increment(answered);
+    }
 }
 
 fn count_item(rpc: &'static str, outcome: &proto::ExplainOutcome) {
