@@ -135,18 +135,30 @@ fn coalition_values(
     let mut outputs = vec![0.0; references.nrows()];
     (0..1usize << players.len())
         .map(|coalition| {
-            let mut rows = references.clone();
-            for mut row in rows.rows_mut() {
-                for (feature, slot) in row.iter_mut().enumerate() {
-                    if coalition >> players.player_of(feature) & 1 == 1 {
-                        *slot = instance[feature];
-                    }
-                }
-            }
+            let rows = hybrid_rows(players, instance, references, coalition);
             model.predict(rows.view(), &mut outputs);
             outputs.iter().sum::<f64>() / outputs.len() as f64
         })
         .collect()
+}
+
+/// The reference rows with the instance's values on the features of the
+/// players in `coalition` (bit i = player i).
+fn hybrid_rows(
+    players: &Players,
+    instance: &[f64],
+    references: &Array2<f64>,
+    coalition: usize,
+) -> Array2<f64> {
+    let mut rows = references.clone();
+    for mut row in rows.rows_mut() {
+        for (feature, slot) in row.iter_mut().enumerate() {
+            if coalition >> players.player_of(feature) & 1 == 1 {
+                *slot = instance[feature];
+            }
+        }
+    }
+    rows
 }
 
 fn factorial(n: usize) -> f64 {
@@ -660,14 +672,7 @@ fn the_tree_walk_table_equals_every_hybrid_row_evaluated() {
                 // Per coalition, the model's raw outputs at every hybrid row.
                 let hybrid: Vec<Vec<f64>> = (0..1usize << p)
                     .map(|coalition| {
-                        let mut rows = references.clone();
-                        for mut row in rows.rows_mut() {
-                            for (feature, slot) in row.iter_mut().enumerate() {
-                                if coalition >> players.player_of(feature) & 1 == 1 {
-                                    *slot = instance[feature];
-                                }
-                            }
-                        }
+                        let rows = hybrid_rows(&players, &instance, references, coalition);
                         model.predict(rows.view(), &mut outputs);
                         outputs.clone()
                     })
@@ -761,14 +766,7 @@ fn the_tree_walk_table_equals_every_hybrid_row_evaluated() {
         let mut outputs = vec![0.0; marginal.nrows()];
         let values: Vec<f64> = (0..1usize << players.len())
             .map(|coalition| {
-                let mut rows = marginal.clone();
-                for mut row in rows.rows_mut() {
-                    for (feature, slot) in row.iter_mut().enumerate() {
-                        if coalition >> players.player_of(feature) & 1 == 1 {
-                            *slot = instance[feature];
-                        }
-                    }
-                }
+                let rows = hybrid_rows(&players, &instance, &marginal, coalition);
                 logistic.predict(rows.view(), &mut outputs);
                 outputs
                     .iter()

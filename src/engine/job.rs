@@ -335,6 +335,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
     // is one instance's under a removal to background or fixed rows and
     // the walk is cheaper than the rows enumeration would fill.
     let fixed = matches!(removal, ValidRemoval::Fixed(_));
+    let row_cost_ns = model.coalition_row_cost_ns();
     let table_cost_ns = model
         .tree_table_cost_ns(fixed)
         .filter(|_| {
@@ -347,7 +348,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         .filter(|table| {
             let rows = plan::enumerated(request.summary, model.players().len()) as f64
                 * rows_per_coalition as f64;
-            *table < rows * model.coalition_row_cost_ns()
+            *table < rows * row_cost_ns
         });
     let chosen = plan::plan(&PlanInput {
         players: model.players().len(),
@@ -359,8 +360,8 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         requested: request.estimator,
         budget: request.budget,
         max_evaluations: request.max_evaluations,
-        row_cost_ns: model.coalition_row_cost_ns(),
-        exact_cost_ns: model.exact_cost_ns(matches!(removal, ValidRemoval::Fixed(_))),
+        row_cost_ns,
+        exact_cost_ns: model.exact_cost_ns(fixed),
         enumeration_cap: request.enumeration_cap,
         row_sampling: removal == ValidRemoval::Marginal
             && instances == 1
@@ -385,7 +386,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         },
         EstimatorKind::RowPermutation => Work::RowSample {
             max_rows: chosen.max_evaluations,
-            round_rows: round_rows(request.budget, model.coalition_row_cost_ns()),
+            round_rows: round_rows(request.budget, row_cost_ns),
             tolerance: request.tolerance,
         },
         sampled => Work::Sample {

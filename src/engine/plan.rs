@@ -139,13 +139,11 @@ impl PlanInput {
     /// Predicted time of `estimator` evaluating at most `evaluations`
     /// coalitions.
     fn predicted(&self, estimator: EstimatorKind, evaluations: u64) -> Duration {
-        let nanoseconds = match estimator {
-            EstimatorKind::TreeExact | EstimatorKind::LinearExact => {
+        let nanoseconds = match (estimator, self.table_cost_ns) {
+            (EstimatorKind::TreeExact | EstimatorKind::LinearExact, _) => {
                 self.exact_cost_ns.unwrap_or(0.0)
             }
-            EstimatorKind::Exact if self.table_cost_ns.is_some() => {
-                self.table_cost_ns.unwrap_or(0.0)
-            }
+            (EstimatorKind::Exact, Some(table)) => table,
             _ => evaluations as f64 * self.coalition_cost_ns(),
         };
         Duration::try_from_secs_f64(nanoseconds.max(0.0) / 1e9).unwrap_or(Duration::MAX)
@@ -531,20 +529,16 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
         && predicted_all.as_secs_f64() <= EXACT_SHARE * input.budget.as_secs_f64()
     {
         let predicted = predicted_all;
-        passed_over.push(if input.table_cost_ns.is_some() {
-            format!(
-                "all 2^{p} coalition values, by walking the trees with each of the {} reference \
-                 rows, ≈ {:.1} ms fit the budget, so the answer is exact",
-                input.rows_per_coalition,
-                milliseconds(predicted)
-            )
+        let how = if input.table_cost_ns.is_some() {
+            "coalition values, by walking the trees with each of the"
         } else {
-            format!(
-                "all 2^{p} coalitions × {} rows ≈ {:.1} ms fit the budget, so the answer is exact",
-                input.rows_per_coalition,
-                milliseconds(predicted)
-            )
-        });
+            "coalitions ×"
+        };
+        passed_over.push(format!(
+            "all 2^{p} {how} {} rows ≈ {:.1} ms fit the budget, so the answer is exact",
+            input.rows_per_coalition,
+            milliseconds(predicted)
+        ));
         return Ok(Plan {
             estimator: EstimatorKind::Exact,
             max_evaluations: all,

@@ -314,9 +314,7 @@ impl PreparedModel {
         if self.players.len() > tree_table::TABLE_PLAYER_LIMIT {
             return None;
         }
-        let rows = self.background.nrows().min(TREE_TIMING_ROWS);
-        let references = self.background.slice(ndarray::s![..rows, ..]);
-        let instance = self.background.row(0).to_vec();
+        let (references, instance) = self.timing_rows();
         let started = Instant::now();
         tree_table::TreeTable::build(
             ensemble,
@@ -328,7 +326,18 @@ impl PreparedModel {
             &super::estimate::Stopping::unbounded(),
         )
         .ok()?;
-        Some(started.elapsed().as_nanos() as f64 / rows as f64)
+        Some(started.elapsed().as_nanos() as f64 / references.nrows() as f64)
+    }
+
+    /// What preparation times the tree algorithms on: the first
+    /// [`TREE_TIMING_ROWS`] background rows as references, the first as
+    /// the instance.
+    fn timing_rows(&self) -> (ArrayView2<'_, f64>, Vec<f64>) {
+        let rows = self.background.nrows().min(TREE_TIMING_ROWS);
+        (
+            self.background.slice(ndarray::s![..rows, ..]),
+            self.background.row(0).to_vec(),
+        )
     }
 
     /// Times the exact tree algorithm for the first background row against
@@ -338,9 +347,8 @@ impl PreparedModel {
         let Structure::Trees(ensemble) = self.structure() else {
             return 0.0;
         };
-        let rows = self.background.nrows().min(TREE_TIMING_ROWS);
-        let references = self.background.slice(ndarray::s![..rows, ..]);
-        let instance = self.background.row(0).to_vec();
+        let (references, instance) = self.timing_rows();
+        let rows = references.nrows();
         let started = Instant::now();
         let timed = tree::explain(
             ensemble,
