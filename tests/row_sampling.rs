@@ -11,8 +11,11 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use apportion::engine::estimate::EstimatorKind;
+use apportion::engine::model::Structure;
+use apportion::engine::summary::Summary;
 use apportion::engine::{
-    ErrorKind, Explanation, Model, Players, PreparedModel, RemovalChoice, Request, Target, prepare,
+    ErrorKind, Explanation, Model, Players, PreparedModel, RemovalChoice, Request, Stopping,
+    Target, prepare,
 };
 use apportion::model::{LinearModel, Link, Tree, TreeEnsemble};
 use apportion::service::proto::{self, register_model_request::Model as ProtoModel};
@@ -224,6 +227,79 @@ fn row_sampling_covers_the_exact_tree_algorithm() {
         row_request(x.clone(), Target::Output, 500, seed)
     });
     println!("trees OUTPUT coverage: {share:.3}");
+    assert!((0.88..=0.99).contains(&share), "coverage {share}");
+}
+
+/// The anytime pass of the compiled tree algorithm (what AUTO's
+/// TREE_EXACT gives when its deadline comes first) over half the trees:
+/// unbiased with honest std errors against the whole pass, and the whole
+/// pass once every tree is done. Accepted coverage 88–99% over ≥ 200
+/// seeds (TESTING.md); the sum over trees of their attributions is the
+/// ensemble's, and the estimate of a total from a simple random sample is
+/// Cochran's ("Sampling Techniques", Wiley, 1977, ch. 2).
+#[test]
+fn the_anytime_tree_pass_covers_the_whole_pass_and_ends_exact() {
+    let p = 6;
+    let bg = background(50, p, 9);
+    let trees = 120;
+    let ensemble =
+        TreeEnsemble::try_new(random_trees(trees, 3, p, 13), 0.1, Link::Identity, p).unwrap();
+    let model = prepared(Arc::new(ensemble), &bg, 50.0);
+    let Some(compiled) = model.compiled_trees() else {
+        panic!("a tree ensemble is compiled at preparation");
+    };
+    assert_eq!(
+        compiled.pattern_trees(),
+        trees,
+        "every tree in pattern form"
+    );
+    let Structure::Trees(ensemble) = model.structure() else {
+        panic!("a tree ensemble");
+    };
+    let x = vec![0.5, -1.0, 1.25, -0.25, 0.75, -1.5];
+    let anytime = |stopping: &Stopping, seed: u64| {
+        compiled
+            .explain_anytime(
+                ensemble,
+                model.players(),
+                model.background(),
+                &x,
+                Summary::Shapley,
+                stopping,
+                seed,
+            )
+            .unwrap()
+    };
+    let exact = compiled
+        .explain(
+            ensemble,
+            model.players(),
+            model.background(),
+            &x,
+            Summary::Shapley,
+        )
+        .unwrap();
+    let (whole, done) = anytime(&Stopping::unbounded(), 1);
+    assert_eq!(done, trees);
+    assert!(whole.converged && whole.std_errors.iter().all(|se| *se == 0.0));
+    for (got, want) in whole.values.iter().zip(&exact.values) {
+        assert!((got - want).abs() < 1e-12, "{got} vs {want}");
+    }
+    let seeds = 250;
+    let mut covered = 0;
+    for seed in 0..seeds {
+        let (half, done) = anytime(&Stopping::evaluations(60), seed);
+        assert_eq!(done, 60);
+        assert!(!half.converged);
+        for ((value, se), truth) in half.values.iter().zip(&half.std_errors).zip(&exact.values) {
+            assert!(se.is_finite() && *se > 0.0, "{se}");
+            if (value - truth).abs() <= 1.96 * se {
+                covered += 1;
+            }
+        }
+    }
+    let share = covered as f64 / (seeds as usize * p) as f64;
+    println!("anytime tree pass coverage: {share:.3}");
     assert!((0.88..=0.99).contains(&share), "coverage {share}");
 }
 

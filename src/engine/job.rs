@@ -153,8 +153,10 @@ enum Sampler {
 #[derive(Debug, Clone, PartialEq)]
 enum Work {
     /// The exact tree algorithm over the background (marginal) or one
-    /// reference row (fixed).
-    TreeExact,
+    /// reference row (fixed). `anytime` (AUTO under marginal removal): if
+    /// the deadline comes first, the answer is estimated from the trees
+    /// done, with std errors, instead of failing.
+    TreeExact { anytime: bool },
     /// The linear closed form against the reference mean or fixed values.
     LinearExact,
     /// Every coalition the summary needs; the tolerance (0: the default)
@@ -374,7 +376,9 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
         table_cost_ns,
     })?;
     let work = match chosen.estimator {
-        EstimatorKind::TreeExact => Work::TreeExact,
+        EstimatorKind::TreeExact => Work::TreeExact {
+            anytime: request.estimator.is_none(),
+        },
         EstimatorKind::LinearExact => Work::LinearExact,
         EstimatorKind::Exact => Work::Enumerate {
             tolerance: request.tolerance,
@@ -529,7 +533,7 @@ impl Job {
         let players = model.players();
         let mut boundary = None;
         let (estimate, counts) = match &self.work {
-            Work::TreeExact => {
+            Work::TreeExact { anytime } => {
                 let Structure::Trees(ensemble) = model.structure() else {
                     return Err(self.not_planned("a tree ensemble"));
                 };
@@ -550,14 +554,28 @@ impl Job {
                         let Some(compiled) = model.compiled_trees() else {
                             return Err(self.not_planned("the ensemble compiled at preparation"));
                         };
-                        compiled.explain_within(
-                            ensemble,
-                            players,
-                            model.background(),
-                            &self.instance,
-                            self.summary,
-                            &stopping,
-                        )?
+                        if *anytime {
+                            compiled
+                                .explain_anytime(
+                                    ensemble,
+                                    players,
+                                    model.background(),
+                                    &self.instance,
+                                    self.summary,
+                                    &stopping,
+                                    self.seed,
+                                )?
+                                .0
+                        } else {
+                            compiled.explain_within(
+                                ensemble,
+                                players,
+                                model.background(),
+                                &self.instance,
+                                self.summary,
+                                &stopping,
+                            )?
+                        }
                     }
                 };
                 (estimate, Counts::default())
@@ -803,7 +821,7 @@ impl Job {
             | Work::Sample { tolerance, .. }
             | Work::RowSample { tolerance, .. }
             | Work::TreeRowSample { tolerance, .. } => tolerance,
-            Work::TreeExact | Work::LinearExact => 0.0,
+            Work::TreeExact { .. } | Work::LinearExact => 0.0,
         }
     }
 

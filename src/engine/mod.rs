@@ -18,6 +18,7 @@ pub mod plan;
 pub mod players;
 pub mod prepared;
 pub mod removal;
+pub mod spread;
 pub mod summary;
 pub mod target;
 pub mod trees;

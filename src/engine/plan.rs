@@ -18,8 +18,9 @@ use super::summary::{Kernel, Summary};
 /// Default cap on players for exact enumeration (2^20 coalitions).
 pub const DEFAULT_ENUMERATION_CAP: usize = 20;
 
-/// Share of the budget an exact enumeration may be predicted to take for
-/// AUTO to choose it: it cannot stop early with what it has, a predicted
+/// Share of the budget an exact enumeration or a model-specific exact
+/// algorithm may be predicted to take for AUTO to choose it: neither can
+/// stop early with what it has, a predicted
 /// time is a mean and not a bound, and a sampler that stops on time is
 /// there when it does not fit (common practice, no source).
 const EXACT_SHARE: f64 = 0.75;
@@ -458,7 +459,7 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
     let mut passed_over = Vec::new();
     if let Some((estimator, why)) = input.model_specific() {
         let predicted = input.predicted(estimator, 0);
-        if predicted <= input.budget {
+        if predicted.as_secs_f64() <= EXACT_SHARE * input.budget.as_secs_f64() {
             return Ok(Plan {
                 estimator,
                 max_evaluations: input.max_evaluations,
@@ -468,9 +469,10 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
             });
         }
         passed_over.push(format!(
-            "{} would take {:.3} ms, over the {budget_ms:.3} ms budget",
+            "{} would take {:.3} ms, more than {:.0}% of the {budget_ms:.3} ms budget",
             estimator.name(),
-            milliseconds(predicted)
+            milliseconds(predicted),
+            EXACT_SHARE * 100.0
         ));
         let rows = input.affordable_tree_rows();
         if input.tree_row_sampling() && rows >= TREE_ROWS_MINIMUM {
@@ -858,11 +860,15 @@ mod tests {
         trees.row_cost_ns = 10_000.0;
         trees.exact_cost_ns = Some(50e6);
         assert_eq!(plan(&trees).unwrap().estimator, EstimatorKind::TreeExact);
-        trees.exact_cost_ns = Some(200e6);
+        // Within the budget but past the 75% an answer that cannot stop
+        // early may be predicted to take.
+        trees.exact_cost_ns = Some(80e6);
         let chosen = plan(&trees).unwrap();
         assert_eq!(chosen.estimator, EstimatorKind::RowPermutation);
         assert!(
-            chosen.reason.contains("TREE_EXACT would take 200.000 ms"),
+            chosen.reason.contains(
+                "TREE_EXACT would take 80.000 ms, more than 75% of the 100.000 ms budget"
+            ),
             "{}",
             chosen.reason
         );

@@ -40,7 +40,14 @@ impl AttributionsService {
     ) -> Result<proto::Explanation, ServiceError> {
         let arrival = Instant::now();
         let timeout = grpc_timeout(request.metadata());
-        explain_one(&self.shared, request.into_inner(), arrival, timeout).await
+        explain_one(
+            &self.shared,
+            "Explain",
+            request.into_inner(),
+            arrival,
+            timeout,
+        )
+        .await
     }
 
     /// Validates and plans the shared request once, then computes the
@@ -229,10 +236,12 @@ impl AttributionsService {
 
 /// One Explain: check the request against the server's maxima, convert it,
 /// prepare a job and run it where the call arrives or on the compute pool
-/// (cancelled if this future is dropped first). `timeout` is what is left
+/// (cancelled if this future is dropped first), and keep the answer
+/// (attribution log, drift) under `rpc`. `timeout` is what is left
 /// of the call's deadline at `arrival`.
 async fn explain_one(
     shared: &Shared,
+    rpc: &'static str,
     message: proto::ExplainRequest,
     arrival: Instant,
     timeout: Option<Duration>,
@@ -244,7 +253,10 @@ async fn explain_one(
         shared.deadline_margin,
     );
     shared.limits.check(&message)?;
-    let mut request = convert::explain_request(&message, budget)?;
+    // The computation is planned and stopped early enough for what follows
+    // it: the hand-off, the conversion and the records.
+    let computing = budget - shared.reserve.kept_back(budget);
+    let mut request = convert::explain_request(&message, computing)?;
     request.max_evaluations = request.max_evaluations.min(shared.limits.evaluations);
     request.max_coalition_rows = shared.limits.coalition_rows;
     let entry = shared.registry.get(&message.model_id, message.version)?;
@@ -257,11 +269,14 @@ async fn explain_one(
             Some(timeout) => timeout.saturating_sub(shared.deadline_margin),
             None => budget,
         };
-    let deadline = arrival + budget;
+    let deadline = arrival + computing;
     // Work of a few microseconds costs less than the handoff to a
     // compute thread.
-    let answer = if job.runs_inline() {
-        guarded("computation", || job.run(deadline))??
+    let (answer, ended) = if job.runs_inline() {
+        (
+            guarded("computation", || job.run(deadline))??,
+            Instant::now(),
+        )
     } else {
         let timing = Timing {
             admit_by,
@@ -274,17 +289,27 @@ async fn explain_one(
         // and frees its compute thread.
         let cancel = CancelOnDrop(shared.drain.cancel_flag());
         let flag = cancel.0.clone();
-        let answer = shared
+        let (answer, ended) = shared
             .pool
-            .run(timing, move || counted(job.run_cancellable(deadline, flag)))
-            .await?
-            .map_err(|error| unless_stopping(shared, error))?;
+            .run(timing, move || {
+                let answer = counted(job.run_cancellable(deadline, flag));
+                (answer, Instant::now())
+            })
+            .await?;
         drop(cancel);
-        answer
+        (
+            answer.map_err(|error| unless_stopping(shared, error))?,
+            ended,
+        )
     };
     on_time(timeout.map(|timeout| arrival + timeout))?;
     record(&answer);
-    Ok(convert::explanation(&entry, &message, &answer, budget))
+    let explanation = convert::explanation(&entry, &message, &answer, budget);
+    log(shared, rpc, &explanation);
+    shared
+        .reserve
+        .observe(ended.saturating_duration_since(deadline) + ended.elapsed());
+    Ok(explanation)
 }
 
 /// Keeps an answer given OK: offered to the attribution log, if there is
@@ -422,12 +447,9 @@ fn serve_stream(
                 // Dropping the computation when the client goes away
                 // cancels it (CancelOnDrop inside).
                 let result = tokio::select! {
-                    result = explain_one(&shared, message, Instant::now(), left) => result,
+                    result = explain_one(&shared, "ExplainStream", message, Instant::now(), left) => result,
                     () = answers.closed() => return,
                 };
-                if let Ok(explanation) = &result {
-                    log(&shared, "ExplainStream", explanation);
-                }
                 let outcome = item(request_id, index, result, "ExplainStream");
                 let _ = answers.send(Ok((outcome, place))).await;
             });
@@ -549,7 +571,6 @@ impl Attributions for AttributionsService {
         let result = match self.shared.admit(request.metadata(), Access::Explain) {
             Ok(_flight) => AttributionsService::explain(self, request)
                 .await
-                .inspect(|explanation| log(&self.shared, "Explain", explanation))
                 .map(Response::new)
                 .map_err(Status::from),
             Err(refused) => Err(refused),

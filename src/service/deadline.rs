@@ -1,8 +1,11 @@
-//! Deadlines: the `grpc-timeout` a call carries, and the budget an Explain
-//! call gets within it.
+//! Deadlines: the `grpc-timeout` a call carries, the budget an Explain
+//! call gets within it, and the time its computation keeps back for what
+//! comes after it.
 
+use std::sync::Mutex;
 use std::time::Duration;
 
+use crate::engine::spread::Spread;
 use tonic::metadata::MetadataMap;
 
 /// The `grpc-timeout` header (gRPC over HTTP/2 protocol spec): at most 8
@@ -44,6 +47,45 @@ pub fn effective_budget(
     }
 }
 
+/// What an answer has measurably taken beyond its computation's end: the
+/// computation's overrun of its own deadline, then the hand-off from a
+/// compute thread, the conversion and the records. A computation is planned
+/// and stopped this much before the budget ends, so that the answer is back
+/// within it: the bound of a [`Spread`] of those times.
+#[derive(Debug, Default)]
+pub struct Reserve {
+    /// In seconds.
+    spread: Mutex<Spread>,
+}
+
+impl Reserve {
+    /// Adds one answer's time beyond its computation.
+    pub fn observe(&self, beyond: Duration) {
+        let mut spread = self
+            .spread
+            .lock()
+            .unwrap_or_else(|poisoned| poisoned.into_inner());
+        spread.observe(beyond.as_secs_f64());
+    }
+
+    /// The time to keep back from a budget: none before any answer, and
+    /// never more than a quarter of the budget (an answer that needs more
+    /// than that after its computation cannot be made on time by cutting
+    /// the computation).
+    pub fn kept_back(&self, budget: Duration) -> Duration {
+        let spread = *self
+            .spread
+            .lock()
+            .unwrap_or_else(|poisoned| poisoned.into_inner());
+        let Some(bound) = spread.bound() else {
+            return Duration::ZERO;
+        };
+        Duration::try_from_secs_f64(bound)
+            .unwrap_or(Duration::MAX)
+            .min(budget / 4)
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -79,6 +121,25 @@ mod tests {
         assert_eq!(
             effective_budget(0, default, Some(Duration::from_millis(2)), margin),
             Duration::ZERO
+        );
+    }
+
+    #[test]
+    fn the_reserve_is_the_bound_of_the_times_seen_within_a_quarter_of_the_budget() {
+        let reserve = Reserve::default();
+        let budget = Duration::from_secs(1);
+        assert_eq!(
+            reserve.kept_back(budget),
+            Duration::ZERO,
+            "nothing measured"
+        );
+        reserve.observe(Duration::from_millis(1));
+        // The first sample's bound: 1 + 4 * 0.5 = 3 ms (engine::spread).
+        let first = reserve.kept_back(budget).as_secs_f64();
+        assert!((first - 3e-3).abs() < 1e-12, "{first}");
+        assert_eq!(
+            reserve.kept_back(Duration::from_millis(8)),
+            Duration::from_millis(2)
         );
     }
 }

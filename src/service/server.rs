@@ -17,6 +17,7 @@ use tonic::metadata::MetadataMap;
 use super::attribution_log::{AttributionLog, LogSettings};
 use super::attributions::AttributionsService;
 use super::auth::{Access, Tokens};
+use super::deadline::Reserve;
 use super::diagnostics::DiagnosticsService;
 use super::drain::{Drain, Flight};
 use super::monitoring::MonitoringService;
@@ -154,6 +155,8 @@ pub(super) struct Shared {
     pub(super) pool: ComputePool,
     pub(super) default_budget: Duration,
     pub(super) deadline_margin: Duration,
+    /// Kept back from an Explain's budget for the answer's way out.
+    pub(super) reserve: Reserve,
     /// What one Explain call may ask for.
     pub(super) limits: Limits,
     /// Most requests of one ExplainStream in flight at once.
@@ -241,6 +244,7 @@ impl State {
                 pool: ComputePool::new(config.compute_threads),
                 default_budget: config.default_budget,
                 deadline_margin: config.deadline_margin,
+                reserve: Reserve::default(),
                 limits: Limits {
                     budget: config.max_budget,
                     evaluations: config.max_evaluations,

@@ -16,12 +16,16 @@
 //! 2^k patterns, where the instance looks up only the 2^|X| that hold B.
 
 use ndarray::{ArrayView2, Axis, aview1};
+use rand::SeedableRng;
+use rand::seq::SliceRandom;
+use rand_chacha::ChaCha8Rng;
 
 use super::{
     ROWS_PER_CHECK, Shares, TREES_PER_CHECK, Walk, check_background, check_instance,
-    check_progress, check_summary,
+    check_progress, check_summary, finite_population,
 };
 use crate::engine::error::{EngineError, Result};
+use crate::engine::estimate::sampling::RunningMoments;
 use crate::engine::estimate::{Estimate, Stopping};
 use crate::engine::model::Model;
 use crate::engine::players::Players;
@@ -59,6 +63,10 @@ const DENSE_MAX_SLOTS: usize = 12;
 /// Counting with one dense table per leaf while the tables of a tree total
 /// at most this many entries; beyond, leaf by leaf with a sort.
 const SCRATCH_MAX_ENTRIES: usize = 1 << 14;
+/// Trees summed between two checks of the deadline by the anytime pass:
+/// a pattern tree of depth 6 takes microseconds, so the pass stops within
+/// tens of microseconds of its deadline.
+const ANYTIME_TREES_PER_CHECK: usize = 4;
 /// Rows counted together, node by node.
 const BLOCK_ROWS: usize = 32;
 /// Bytes per stored pattern in the sparse form (u64 mask + u32 count) and
@@ -279,26 +287,7 @@ impl CompiledTrees {
         summary: Summary,
         stopping: &Stopping,
     ) -> Result<Estimate> {
-        check_summary(summary)?;
-        check_background(ensemble, players, background)?;
-        check_instance(ensemble, instance)?;
-        if ensemble.trees().len() != self.forms.len()
-            || background.nrows() != self.rows
-            || players.len() != self.players
-        {
-            return Err(EngineError::new(
-                "background",
-                format!(
-                    "compiled for {} trees, {} players and {} background rows; given {}, {} and {}",
-                    self.forms.len(),
-                    self.players,
-                    self.rows,
-                    ensemble.trees().len(),
-                    players.len(),
-                    background.nrows()
-                ),
-            ));
-        }
+        self.check_request(ensemble, players, background, instance, summary)?;
         let shares = Shares::new(summary, players.len());
         // Totals over background rows: the pattern trees weigh each
         // pattern by its row count, the per-row trees add row by row.
@@ -337,6 +326,126 @@ impl CompiledTrees {
         let mut full = [0.0];
         ensemble.predict(aview1(instance).insert_axis(Axis(0)), &mut full);
         Ok(Estimate::exact(values, full[0], self.value_empty))
+    }
+
+    /// [`CompiledTrees::explain_within`] for when an answer is wanted by
+    /// the deadline even if the whole pass is not done: anytime, when every
+    /// tree is in pattern form (else the same exact pass). The attributions
+    /// of an ensemble are the sum of its trees' attributions, so trees are
+    /// taken in a seeded random order and the sum over all `T` is estimated
+    /// as `T` times the mean over the `n` done: unbiased, with std error
+    /// `T · sqrt(s² / n · (1 − n / T))` from the spread `s²` of the
+    /// per-tree attributions and the finite-population correction (Cochran,
+    /// "Sampling Techniques", Wiley, 1977, ch. 2). With every tree done the
+    /// answer is exact (std errors 0, converged). Fails at the deadline
+    /// only before two trees are done; `stopping.max_evaluations` caps the
+    /// trees (at least two). Returns the trees done.
+    #[allow(clippy::too_many_arguments)]
+    pub fn explain_anytime(
+        &self,
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        instance: &[f64],
+        summary: Summary,
+        stopping: &Stopping,
+        seed: u64,
+    ) -> Result<(Estimate, usize)> {
+        let total = self.forms.len();
+        if self.pattern_trees() < total || total < 2 {
+            let estimate =
+                self.explain_within(ensemble, players, background, instance, summary, stopping)?;
+            return Ok((estimate, total));
+        }
+        self.check_request(ensemble, players, background, instance, summary)?;
+        let mut order: Vec<usize> = (0..total).collect();
+        order.shuffle(&mut ChaCha8Rng::seed_from_u64(seed));
+        let shares = Shares::new(summary, players.len());
+        // One tree's attributions, scaled so that their mean over trees
+        // estimates the ensemble's.
+        let scale = total as f64 / self.rows as f64;
+        let mut tree_values = vec![0.0; players.len()];
+        // Totals over background rows of the trees done, as in
+        // explain_within; the moments give only the std errors.
+        let mut totals = vec![0.0; players.len()];
+        let mut moments = RunningMoments::new(players.len());
+        let mut fails = Vec::new();
+        let cap = usize::try_from(stopping.max_evaluations)
+            .unwrap_or(usize::MAX)
+            .clamp(2, total);
+        for (done, &tree) in order[..cap].iter().enumerate() {
+            if done % ANYTIME_TREES_PER_CHECK == 0 {
+                if done < 2 {
+                    check_progress(stopping, done, total)?;
+                } else {
+                    stopping.check_cancelled()?;
+                    if stopping.past_deadline() {
+                        break;
+                    }
+                }
+            }
+            let Some(pattern) = &self.forms[tree] else {
+                unreachable!("every tree is in pattern form");
+            };
+            tree_values.fill(0.0);
+            pattern.add(instance, &shares, &mut fails, &mut tree_values);
+            for (total, value) in totals.iter_mut().zip(&mut tree_values) {
+                *total += *value;
+                *value *= scale;
+            }
+            moments.add(&tree_values);
+        }
+        let done = moments.count() as usize;
+        // The trees done stand for all of them.
+        let rows = self.rows as f64 * done as f64 / total as f64;
+        let mut std_errors = vec![0.0; players.len()];
+        if done < total {
+            finite_population(&moments, total, &mut std_errors);
+        }
+        let mut full = [0.0];
+        ensemble.predict(aview1(instance).insert_axis(Axis(0)), &mut full);
+        let estimate = Estimate {
+            values: totals.iter().map(|total| total / rows).collect(),
+            std_errors,
+            value_full: full[0],
+            value_empty: self.value_empty,
+            converged: done == total,
+            selection: None,
+        };
+        Ok((estimate, done))
+    }
+
+    /// The checks of every explanation: the request's, and that this is
+    /// the ensemble, players and background it was compiled for.
+    fn check_request(
+        &self,
+        ensemble: &TreeEnsemble,
+        players: &Players,
+        background: ArrayView2<'_, f64>,
+        instance: &[f64],
+        summary: Summary,
+    ) -> Result<()> {
+        check_summary(summary)?;
+        check_background(ensemble, players, background)?;
+        check_instance(ensemble, instance)?;
+        if ensemble.trees().len() != self.forms.len()
+            || background.nrows() != self.rows
+            || players.len() != self.players
+        {
+            return Err(EngineError::new(
+                "background",
+                format!(
+                    "compiled for {} trees, {} players and {} background rows; given {}, {} and {}",
+                    self.forms.len(),
+                    self.players,
+                    self.rows,
+                    ensemble.trees().len(),
+                    players.len(),
+                    background.nrows()
+                ),
+            ));
+        }
+        Ok(())
     }
 
     /// Heap bytes of the pattern summaries.
