@@ -117,6 +117,11 @@ impl<'a> CachedGame<'a> {
         self.evaluations.load(Ordering::Relaxed)
     }
 
+    /// Whether `coalition` has been evaluated.
+    pub fn holds(&self, coalition: Coalition) -> bool {
+        self.cache.contains_key(&coalition)
+    }
+
     /// Requests answered from the cache (including repeats within a batch).
     pub fn cache_hits(&self) -> u64 {
         self.hits.load(Ordering::Relaxed)

@@ -200,13 +200,27 @@ impl ComputePool {
             let start = ledger.predicted_start(now, self.threads);
             if start > start_by {
                 let wait = start - now;
-                return Err(ServiceError::Busy {
-                    message: format!(
-                        "every compute thread is busy: this call is predicted to start in {:.1}                          ms, too late to finish {:.1} ms of work by its deadline; retry after                          the hint in the {} trailer, on another replica, or with a longer deadline",
+                let message = if wait.is_zero() {
+                    // A thread is free: it is the time left that is short.
+                    format!(
+                        "the smallest answer this call's plan can give is predicted to take \
+                         {:.1} ms, more than the {:.1} ms left for its computation; give a larger \
+                         budget_ms (and call deadline)",
+                        milliseconds(timing.minimum),
+                        milliseconds(timing.deadline.saturating_duration_since(now))
+                    )
+                } else {
+                    format!(
+                        "every compute thread is busy: this call is predicted to start in {:.1} \
+                         ms, too late to finish {:.1} ms of work by its deadline; retry after the \
+                         hint in the {} trailer, on another replica, or with a longer deadline",
                         milliseconds(wait),
                         milliseconds(timing.minimum),
                         super::status::RETRY_AFTER_METADATA
-                    ),
+                    )
+                };
+                return Err(ServiceError::Busy {
+                    message,
                     retry_after: wait,
                 });
             }
@@ -230,7 +244,9 @@ impl ComputePool {
                 let wait = self.predicted_wait();
                 return Err(ServiceError::Busy {
                     message: format!(
-                        "every compute thread stayed busy past the latest start this call allows                          (the work ahead ran longer than predicted); retry after the hint in the                          {} trailer, on another replica, or with a longer deadline",
+                        "every compute thread stayed busy past the latest start this call allows \
+                         (the work ahead ran longer than predicted); retry after the hint in the \
+                         {} trailer, on another replica, or with a longer deadline",
                         super::status::RETRY_AFTER_METADATA
                     ),
                     retry_after: wait,
@@ -328,6 +344,25 @@ mod tests {
         assert!(matches!(exact, Err(ServiceError::Busy { .. })), "{exact:?}");
         let sampler = pool.run(timing(100 * MS, 500 * MS, 5 * MS), || 2).await;
         assert_eq!(sampler.unwrap(), 2);
+    }
+
+    #[tokio::test]
+    async fn with_a_thread_free_a_refusal_blames_the_time_left_not_the_threads() {
+        // Nothing runs, but the smallest answer (20 ms) does not fit the
+        // 10 ms left: the caller needs a larger budget, not a retry.
+        let pool = ComputePool::new(1);
+        let refused = pool
+            .run(timing(10 * MS, 20 * MS, 20 * MS), || 1)
+            .await
+            .unwrap_err();
+        let ServiceError::Busy { message, .. } = refused else {
+            panic!("{refused:?}");
+        };
+        assert!(
+            message.contains("predicted to take 20.0 ms") && message.contains("larger budget_ms"),
+            "{message}"
+        );
+        assert!(!message.contains("busy"), "{message}");
     }
 
     #[test]

@@ -109,7 +109,10 @@ pub(super) fn check_players(players: usize) -> Result<()> {
 }
 
 /// Refuses a cap below `need` evaluations (or below `2^p`, which always
-/// suffices because no coalition is counted twice).
+/// suffices because no coalition is counted twice). Every sampler's `need`
+/// counts the two ends; an end the game has already evaluated (the job
+/// looks them up early for the default tolerance) is counted in its
+/// evaluations, so it is taken off the need rather than counted twice.
 pub(super) fn require_evaluations(
     game: &CachedGame,
     stopping: &Stopping,
@@ -122,13 +125,18 @@ pub(super) fn require_evaluations(
     } else {
         need
     };
+    let ends_held = [Coalition::EMPTY, Coalition::full(players)]
+        .into_iter()
+        .filter(|end| game.holds(*end))
+        .count() as u64;
     let allowed = stopping.max_evaluations.saturating_sub(game.evaluations());
-    if allowed < need {
+    if allowed < need.saturating_sub(ends_held) {
         return Err(EngineError::new(
             "max_evaluations",
             format!(
                 "{estimator} needs at least {need} coalition evaluations for {players} players; \
-                 {allowed} allowed"
+                 {} allowed",
+                allowed + ends_held
             ),
         ));
     }
@@ -161,10 +169,17 @@ pub(super) struct Budget {
 
 impl Budget {
     pub(super) fn new(game: &CachedGame, stopping: &Stopping, first_units: u64) -> Budget {
+        // The ends the game already holds are in its evaluations, so they
+        // are charged already.
+        let full = Coalition::full(game.players());
+        let seen = [Coalition::EMPTY, full]
+            .into_iter()
+            .filter(|end| game.holds(*end))
+            .collect();
         Budget {
             cap: stopping.max_evaluations,
             charged: game.evaluations(),
-            seen: HashSet::new(),
+            seen,
             draws: 0,
             draw_limit: stopping.max_evaluations.max(first_units),
             exhausted: false,
@@ -268,6 +283,7 @@ impl RunningMoments {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::engine::estimate::EstimatorKind;
     use crate::engine::game::FnGame;
 
     /// The budget's charge is an upper bound on what the cache evaluates, so
@@ -292,6 +308,43 @@ mod tests {
         cached.values(&[a, b, c, a.union(b)], &mut out);
         assert!(cached.evaluations() <= 5);
         assert_eq!(cached.evaluations(), 4);
+    }
+
+    /// A cap of exactly a sampler's smallest run is enough when the ends
+    /// were evaluated before it (as the job does for the default
+    /// tolerance): they are part of its need, not extra to it. The load
+    /// bench found AUTO's plans at that cap refused on `max_evaluations`.
+    #[test]
+    fn ends_evaluated_first_count_once_towards_the_smallest_run() {
+        use crate::engine::plan::sampler_minimum;
+        let players = 20;
+        let game = FnGame::new(players, |c: Coalition| c.len() as f64);
+        for estimator in [
+            EstimatorKind::LeverageRegression,
+            EstimatorKind::Permutation,
+            EstimatorKind::MaximumSampleReuse,
+        ] {
+            let cached = CachedGame::new(&game);
+            let mut ends = [0.0; 2];
+            cached.values(&[Coalition::EMPTY, Coalition::full(players)], &mut ends);
+            let cap = sampler_minimum(estimator, players);
+            let stopping = Stopping::evaluations(cap);
+            let result = match estimator {
+                EstimatorKind::LeverageRegression => {
+                    super::super::regression::leverage(&cached, &stopping, 1)
+                }
+                EstimatorKind::Permutation => {
+                    super::super::permutation::shapley(&cached, &stopping, 1)
+                }
+                _ => super::super::msr::banzhaf(&cached, &stopping, 1),
+            };
+            assert!(result.is_ok(), "{estimator:?} at {cap}: {result:?}");
+            assert!(
+                cached.evaluations() <= cap,
+                "{estimator:?}: {}",
+                cached.evaluations()
+            );
+        }
     }
 
     /// Welford's running variance equals the two-pass textbook formula
