@@ -166,9 +166,12 @@ enum Work {
     Enumerate { tolerance: f64, tree_walk: bool },
     /// An anytime sampler stopping at the tolerance (0: the default, see
     /// [`estimate::default_tolerance`]), the evaluation cap or the deadline.
+    /// `budget_capped`: the budget, not the caller's cap, set
+    /// `max_evaluations`.
     Sample {
         sampler: Sampler,
         max_evaluations: u64,
+        budget_capped: bool,
         tolerance: f64,
     },
     /// Joint (permutation, background row) sampling of the marginal game,
@@ -411,6 +414,7 @@ pub fn prepare_template(model: &Arc<PreparedModel>, request: &Request) -> Result
                 }
             },
             max_evaluations: chosen.max_evaluations,
+            budget_capped: chosen.max_evaluations < request.max_evaluations,
             tolerance: request.tolerance,
         },
     };
@@ -686,6 +690,24 @@ impl Job {
         })
     }
 
+    /// A sampler that ran out of evaluations the budget set (not the caller)
+    /// is short of budget, not of `max_evaluations`: the caller did not set
+    /// that field, and a larger cap alone would not be planned.
+    fn budget_short(error: EngineError, budget_capped: bool, evaluations: u64) -> EngineError {
+        if !budget_capped || error.field != "max_evaluations" {
+            return error;
+        }
+        EngineError::of_kind(
+            ErrorKind::ResourceExhausted,
+            "budget_ms",
+            format!(
+                "the {evaluations} coalition evaluations the budget pays for did not give an answer \
+             ({}); a larger budget_ms (and call deadline) would",
+                error.message
+            ),
+        )
+    }
+
     /// Enumeration and sampling: removal ∘ model ∘ target behind the
     /// per-request cache.
     fn run_on_game(&self, mut stopping: Stopping) -> Result<(Estimate, Counts, Option<Boundary>)> {
@@ -759,6 +781,7 @@ impl Job {
             Work::Sample {
                 sampler,
                 max_evaluations,
+                budget_capped,
                 ..
             } => {
                 stopping.max_evaluations = max_evaluations;
@@ -784,15 +807,16 @@ impl Job {
                     None => stopping.clone(),
                 };
                 let estimate = match sampler {
-                    Sampler::Permutation => estimate::permutation::shapley(&cached, &first, seed)?,
+                    Sampler::Permutation => estimate::permutation::shapley(&cached, &first, seed),
                     Sampler::PairedRegression(kernel) => {
-                        estimate::regression::paired(&cached, kernel, &first, seed)?
+                        estimate::regression::paired(&cached, kernel, &first, seed)
                     }
                     Sampler::LeverageRegression => {
-                        estimate::regression::leverage(&cached, &first, seed)?
+                        estimate::regression::leverage(&cached, &first, seed)
                     }
-                    Sampler::MaximumSampleReuse => estimate::msr::banzhaf(&cached, &first, seed)?,
-                };
+                    Sampler::MaximumSampleReuse => estimate::msr::banzhaf(&cached, &first, seed),
+                }
+                .map_err(|error| Self::budget_short(error, budget_capped, max_evaluations))?;
                 match aim {
                     Some(goal) => {
                         let (refined, report) =
@@ -973,5 +997,35 @@ fn check_label(field: &str, label: f64, link: Link) -> Result<()> {
                 "{label} is not a valid label: a logistic model needs 0 or 1 (or a probability in between), a regression model a finite number"
             ),
         ))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Our own rule (common practice, no source): a field the caller did not
+    // set is never the one blamed.
+    #[test]
+    fn a_cap_the_budget_set_is_reported_as_short_budget() {
+        let short = EngineError::new(
+            "max_evaluations",
+            "the coalitions sampled within the cap do not determine the fit",
+        );
+        let blamed = Job::budget_short(short.clone(), true, 42);
+        assert_eq!(blamed.kind, ErrorKind::ResourceExhausted);
+        assert_eq!(blamed.field, "budget_ms");
+        assert!(
+            blamed
+                .message
+                .contains("the 42 coalition evaluations the budget pays for")
+                && blamed.message.contains("do not determine the fit"),
+            "{}",
+            blamed.message
+        );
+        // The caller's own cap is still the caller's to raise.
+        assert_eq!(Job::budget_short(short.clone(), false, 42), short);
+        let other = EngineError::new("seed", "not this one");
+        assert_eq!(Job::budget_short(other.clone(), true, 42), other);
     }
 }
