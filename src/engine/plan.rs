@@ -25,6 +25,14 @@ pub const DEFAULT_ENUMERATION_CAP: usize = 20;
 /// there when it does not fit (common practice, no source).
 const EXACT_SHARE: f64 = 0.75;
 
+/// Share of the budget a coalition sampler's smallest run may be predicted
+/// to take for AUTO to choose it when joint row sampling could answer
+/// instead: a smallest run that nearly fills the budget gives one barely
+/// determined estimate and leaves nothing for a late start, where joint
+/// row sampling spends the same time on many cheap units and can stop
+/// after any of them (common practice, no source).
+const SAMPLER_FIRST_SHARE: f64 = 0.5;
+
 /// What the model lets the planner do beyond evaluating it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ModelShape {
@@ -582,19 +590,25 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
     };
     let needed = sampler_minimum(estimator, p);
     let sampled_cap = input.max_evaluations.min(affordable);
-    if sampled_cap >= needed {
+    let coalition_predicted = input.predicted(estimator, needed);
+    let joint = input.summary == Summary::Shapley && input.row_sampling;
+    let roomy =
+        coalition_predicted.as_secs_f64() <= SAMPLER_FIRST_SHARE * input.budget.as_secs_f64();
+    let coalition_plan = |mut passed_over: Vec<String>| {
         passed_over.push(format!(
             "sampling with {method}, up to {sampled_cap} coalitions"
         ));
-        return Ok(Plan {
+        Ok(Plan {
             estimator,
             max_evaluations: sampled_cap,
             reason: passed_over.join("; "),
             predicted: input.predicted(estimator, sampled_cap),
-            minimum: input.predicted(estimator, needed),
-        });
+            minimum: coalition_predicted,
+        })
+    };
+    if sampled_cap >= needed && (roomy || !joint) {
+        return coalition_plan(passed_over);
     }
-    let coalition_predicted = input.predicted(estimator, needed);
     if input.max_evaluations < needed && affordable >= needed {
         // The caller's own cap, not the budget, is what is too small.
         return Err(EngineError::new(
@@ -607,17 +621,27 @@ fn plan_auto(input: &PlanInput) -> Result<Plan> {
         ));
     }
 
-    if input.summary == Summary::Shapley && input.row_sampling {
+    if joint {
         let rows_needed = row_permutation::minimum_rows(p);
         let rows = input.max_evaluations.min(input.affordable_rows());
+        if rows < rows_needed && sampled_cap >= needed {
+            return coalition_plan(passed_over);
+        }
         if rows >= rows_needed {
             passed_over.push(format!(
                 "one coalition over all {} background rows costs {:.3} ms, so the {needed} \
-                 coalitions the smallest {} run needs do not fit the {budget_ms:.3} ms budget; \
-                 sampling permutations and background rows jointly instead, up to {rows} model rows",
+                 coalitions the smallest {} run needs would take {:.3} ms, {} the {budget_ms:.3} \
+                 ms budget; sampling permutations and background rows jointly instead, up to \
+                 {rows} model rows",
                 input.rows_per_coalition,
                 milliseconds(input.predicted(estimator, 1)),
-                estimator.name()
+                estimator.name(),
+                milliseconds(coalition_predicted),
+                if sampled_cap >= needed {
+                    "more than half of"
+                } else {
+                    "over"
+                }
             ));
             return Ok(Plan {
                 estimator: EstimatorKind::RowPermutation,
@@ -806,8 +830,19 @@ mod tests {
         // 100 ms at 10 µs a row pays for 10,000 rows.
         assert_eq!(chosen.max_evaluations, 10_000);
         assert!(chosen.reason.contains("jointly"), "{}", chosen.reason);
-        // With the budget for 62 coalitions the coalition sampler comes back.
+        // The budget pays for the 62 coalitions of the smallest leverage
+        // run (620 ms), but they would take more than half of it.
         let chosen = plan(&expensive_coalitions(700)).unwrap();
+        assert_eq!(chosen.estimator, EstimatorKind::RowPermutation);
+        assert!(
+            chosen
+                .reason
+                .contains("would take 620.000 ms, more than half of the 700.000 ms budget"),
+            "{}",
+            chosen.reason
+        );
+        // Within half the budget the coalition sampler comes back.
+        let chosen = plan(&expensive_coalitions(1300)).unwrap();
         assert_eq!(chosen.estimator, EstimatorKind::LeverageRegression);
         // A loss is applied to the averaged prediction: no row sampling.
         let loss = PlanInput {
