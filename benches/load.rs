@@ -19,7 +19,7 @@ use std::collections::{BTreeMap, HashMap};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use apportion::registry::{Background, FeatureSpec, LinkSpec, ModelBody, ModelSpec, Registry};
+use apportion::registry::{LinkSpec, ModelBody, ModelSpec, Registry};
 use apportion::service::proto::attributions_client::AttributionsClient;
 use apportion::service::proto::{self};
 use apportion::service::{Config, State, status::RETRY_AFTER_METADATA};
@@ -201,25 +201,6 @@ fn rows_of(matrix: &Array2<f64>) -> Arc<Vec<Vec<f64>>> {
     Arc::new(matrix.rows().into_iter().map(|row| row.to_vec()).collect())
 }
 
-fn features(count: usize) -> Vec<FeatureSpec> {
-    (0..count)
-        .map(|j| FeatureSpec {
-            name: format!("x{j}"),
-            group: String::new(),
-            reason_code: String::new(),
-            reason_text: String::new(),
-        })
-        .collect()
-}
-
-fn background(matrix: &Array2<f64>) -> Background {
-    Background {
-        rows: matrix.nrows(),
-        cols: matrix.ncols(),
-        values: matrix.iter().copied().collect(),
-    }
-}
-
 /// A 20-feature logistic model on 1,000 random background rows (bench data
 /// only), and 200 instances.
 fn logistic() -> (ModelSpec, Array2<f64>) {
@@ -227,13 +208,13 @@ fn logistic() -> (ModelSpec, Array2<f64>) {
     let rows = Array2::from_shape_fn((BACKGROUND_ROWS, 20), |_| rng.random_range(-1.0..1.0));
     let spec = ModelSpec {
         model_id: "load-logistic".into(),
-        features: features(20),
+        features: forest::feature_specs(20),
         model: ModelBody::Linear {
             weights: (0..20).map(|_| rng.random_range(-1.0..1.0)).collect(),
             intercept: 0.1,
         },
         link: LinkSpec::Logistic,
-        background: background(&rows),
+        background: forest::background_spec(&rows),
         description: String::new(),
         imported: None,
         decision: None,
@@ -257,14 +238,14 @@ fn network() -> (ModelSpec, Array2<f64>) {
     let matrix = Array2::from_shape_vec((rows.len(), columns), rows.concat()).expect("a matrix");
     let spec = ModelSpec {
         model_id: "load-network".into(),
-        features: features(columns),
+        features: forest::feature_specs(columns),
         model: ModelBody::Onnx {
             graph,
             output: String::new(),
             column: 0,
         },
         link: LinkSpec::Identity,
-        background: background(&matrix),
+        background: forest::background_spec(&matrix),
         description: String::new(),
         imported: None,
         decision: None,

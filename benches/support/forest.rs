@@ -112,29 +112,39 @@ pub fn ensemble(seed: u64, trees: usize, depth: usize, data: &Array2<f64>) -> Tr
     TreeEnsemble::try_new(trees, 0.0, Link::Identity, FEATURES).expect("valid ensemble")
 }
 
+/// Features `x0`, `x1`, … without groups or reasons.
+pub fn feature_specs(count: usize) -> Vec<FeatureSpec> {
+    (0..count)
+        .map(|j| FeatureSpec {
+            name: format!("x{j}"),
+            group: String::new(),
+            reason_code: String::new(),
+            reason_text: String::new(),
+        })
+        .collect()
+}
+
+/// `rows` as a registration's background.
+pub fn background_spec(rows: &Array2<f64>) -> Background {
+    Background {
+        rows: rows.nrows(),
+        cols: rows.ncols(),
+        values: rows.iter().copied().collect(),
+    }
+}
+
 /// The registration of `model` over `background`, as a client would send it.
 pub fn spec(model: &TreeEnsemble, background: &Array2<f64>) -> ModelSpec {
     let trees = model.trees().iter().map(TreeBody::from).collect();
     ModelSpec {
         model_id: "bench-trees".to_string(),
-        features: (0..FEATURES)
-            .map(|j| FeatureSpec {
-                name: format!("x{j}"),
-                group: String::new(),
-                reason_code: String::new(),
-                reason_text: String::new(),
-            })
-            .collect(),
+        features: feature_specs(FEATURES),
         model: ModelBody::Trees {
             trees,
             base_score: model.base_score(),
         },
         link: LinkSpec::Identity,
-        background: Background {
-            rows: background.nrows(),
-            cols: background.ncols(),
-            values: background.iter().copied().collect(),
-        },
+        background: background_spec(background),
         description: String::new(),
         imported: None,
         decision: None,

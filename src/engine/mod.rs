@@ -18,7 +18,6 @@ pub mod plan;
 pub mod players;
 pub mod prepared;
 pub mod removal;
-pub mod spread;
 pub mod summary;
 pub mod target;
 pub mod trees;

@@ -5,7 +5,6 @@
 use std::sync::Mutex;
 use std::time::Duration;
 
-use crate::engine::spread::Spread;
 use tonic::metadata::MetadataMap;
 
 /// The `grpc-timeout` header (gRPC over HTTP/2 protocol spec): at most 8
@@ -44,6 +43,35 @@ pub fn effective_budget(
     match timeout {
         Some(timeout) => asked.min(timeout.saturating_sub(margin)),
         None => asked,
+    }
+}
+
+/// A smoothed time and its mean deviation, kept as a retransmission timer
+/// keeps round-trip times ("Computing TCP's Retransmission Timer", RFC
+/// 6298, 2011, section 2: gains 1/8 and 1/4, a bound of the mean plus four
+/// deviations): a time that varies from call to call, planned for by what
+/// it rarely exceeds rather than by its mean.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+struct Spread {
+    /// Smoothed value and mean deviation; `None` before the first sample.
+    state: Option<(f64, f64)>,
+}
+
+impl Spread {
+    fn observe(&mut self, sample: f64) {
+        self.state = Some(match self.state {
+            None => (sample, sample / 2.0),
+            Some((mean, deviation)) => (
+                mean + (sample - mean) / 8.0,
+                deviation + ((sample - mean).abs() - deviation) / 4.0,
+            ),
+        });
+    }
+
+    /// The smoothed value plus four mean deviations; `None` before any
+    /// sample.
+    fn bound(&self) -> Option<f64> {
+        self.state.map(|(mean, deviation)| mean + 4.0 * deviation)
     }
 }
 
@@ -125,6 +153,22 @@ mod tests {
     }
 
     #[test]
+    fn the_bound_follows_the_retransmission_timer_rule() {
+        // RFC 6298 (2011), section 2: the first sample R gives SRTT = R and
+        // RTTVAR = R/2; then RTTVAR += (|SRTT - R| - RTTVAR)/4 before
+        // SRTT += (R - SRTT)/8, and the timeout is SRTT + 4 RTTVAR.
+        let mut spread = Spread::default();
+        assert_eq!(spread.bound(), None);
+        spread.observe(1.0);
+        // 1 + 4 * 0.5.
+        assert!((spread.bound().unwrap() - 3.0).abs() < 1e-12);
+        spread.observe(3.0);
+        // RTTVAR = 0.5 + (2 - 0.5)/4 = 0.875; SRTT = 1 + 2/8 = 1.25;
+        // 1.25 + 3.5 = 4.75.
+        assert!((spread.bound().unwrap() - 4.75).abs() < 1e-12);
+    }
+
+    #[test]
     fn the_reserve_is_the_bound_of_the_times_seen_within_a_quarter_of_the_budget() {
         let reserve = Reserve::default();
         let budget = Duration::from_secs(1);
@@ -134,7 +178,7 @@ mod tests {
             "nothing measured"
         );
         reserve.observe(Duration::from_millis(1));
-        // The first sample's bound: 1 + 4 * 0.5 = 3 ms (engine::spread).
+        // The first sample's bound: 1 + 4 * 0.5 = 3 ms (RFC 6298, as above).
         let first = reserve.kept_back(budget).as_secs_f64();
         assert!((first - 3e-3).abs() < 1e-12, "{first}");
         assert_eq!(

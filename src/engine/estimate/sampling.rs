@@ -108,10 +108,17 @@ pub(super) fn check_players(players: usize) -> Result<()> {
     Ok(())
 }
 
+/// The two ends of the game that it has already evaluated (the job looks
+/// them up early for the default tolerance).
+fn held_ends<'g>(game: &'g CachedGame) -> impl Iterator<Item = Coalition> + 'g {
+    [Coalition::EMPTY, Coalition::full(game.players())]
+        .into_iter()
+        .filter(|end| game.holds(*end))
+}
+
 /// Refuses a cap below `need` evaluations (or below `2^p`, which always
 /// suffices because no coalition is counted twice). Every sampler's `need`
-/// counts the two ends; an end the game has already evaluated (the job
-/// looks them up early for the default tolerance) is counted in its
+/// counts the two ends; an end the game already holds is counted in its
 /// evaluations, so it is taken off the need rather than counted twice.
 pub(super) fn require_evaluations(
     game: &CachedGame,
@@ -125,10 +132,7 @@ pub(super) fn require_evaluations(
     } else {
         need
     };
-    let ends_held = [Coalition::EMPTY, Coalition::full(players)]
-        .into_iter()
-        .filter(|end| game.holds(*end))
-        .count() as u64;
+    let ends_held = held_ends(game).count() as u64;
     let allowed = stopping.max_evaluations.saturating_sub(game.evaluations());
     if allowed < need.saturating_sub(ends_held) {
         return Err(EngineError::new(
@@ -169,17 +173,12 @@ pub(super) struct Budget {
 
 impl Budget {
     pub(super) fn new(game: &CachedGame, stopping: &Stopping, first_units: u64) -> Budget {
-        // The ends the game already holds are in its evaluations, so they
-        // are charged already.
-        let full = Coalition::full(game.players());
-        let seen = [Coalition::EMPTY, full]
-            .into_iter()
-            .filter(|end| game.holds(*end))
-            .collect();
         Budget {
             cap: stopping.max_evaluations,
+            // The ends the game already holds are in its evaluations, so
+            // they are charged already.
             charged: game.evaluations(),
-            seen,
+            seen: held_ends(game).collect(),
             draws: 0,
             draw_limit: stopping.max_evaluations.max(first_units),
             exhausted: false,
